@@ -6,7 +6,7 @@ The curated public names are listed in ``__all__``; see the README for a tour.
 from __future__ import annotations
 
 from .classify import CellTag
-from .errors import IbprepError, InputError, MissingDependencyError
+from .errors import IbprepError, IbprepWarning, InputError, MissingDependencyError
 from .grid import Grid, NestedGrid, refine
 
 __version__ = "0.1.0.dev0"
@@ -15,6 +15,7 @@ __all__ = [
     "CellTag",
     "Grid",
     "IbprepError",
+    "IbprepWarning",
     "InputError",
     "MissingDependencyError",
     "NestedGrid",

@@ -9,7 +9,7 @@ never prints or exits (only the command line does).
 
 from __future__ import annotations
 
-__all__ = ["IbprepError", "InputError", "MissingDependencyError"]
+__all__ = ["IbprepError", "InputError", "MissingDependencyError", "IbprepWarning"]
 
 
 class IbprepError(Exception):
@@ -28,4 +28,12 @@ class MissingDependencyError(IbprepError, ImportError):
     """An optional dependency needed by the requested feature is not installed.
 
     The message names the package (or extra) to install.
+    """
+
+
+class IbprepWarning(UserWarning):
+    """Something the caller should know that is not an error (e.g. a body lies wholly outside the grid).
+
+    Raised through :func:`warnings.warn`; the command line turns these into report
+    notes, tests can turn them into errors.
     """
