@@ -733,7 +733,7 @@ class Motion:
         tt, shape = _times(t)
         rot, off = self._kinematics(tt, order)
         a = pts - np.asarray(self.roll_root)
-        out = np.einsum("nij,mj->nmi", rot[order], a) + off[order][:, None, :]
+        out = a @ rot[order].transpose(0, 2, 1) + off[order][:, None, :]  # (n, m, 3), batched matmul
         return out.reshape(shape + pts.shape)
 
     def angular_velocity(self, t) -> np.ndarray:

@@ -9,6 +9,8 @@ import math
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy.interpolate import CubicSpline
 from scipy.spatial.transform import Rotation
 
@@ -320,13 +322,13 @@ def test_strouhal_st_03_heave_angle():
 
 
 @pytest.mark.parametrize(
-    "st, theta0_deg, alpha_max_deg, at_deg",
+    "strouhal, theta0_deg, alpha_max_deg, at_deg",
     [(0.30, 23.304, 20.000, 0.0), (0.45, 34.726, 20.743, 144.7), (0.60, 42.053, 23.453, 48.4)],
 )
-def test_effective_angle_of_attack_table(st, theta0_deg, alpha_max_deg, at_deg):
+def test_effective_angle_of_attack_table(strouhal, theta0_deg, alpha_max_deg, at_deg):
     # REFERENCES §2.4 [computed]: h0 = 0.75 c, phi = 90 deg, nominal alpha_max = 20 deg.
     # theta0 is printed to 3 decimals, which moves alpha by < 5e-4 deg; the printed max to 3 decimals.
-    f = st / (2 * 0.75)
+    f = strouhal / (2 * 0.75)
     mot = Motion(frequency=f, plunge_amplitude=0.75, pitch_amplitude=theta0_deg * DEG, phase=math.pi / 2)
     num = flow_numbers(mot, 1.0, 1.0, 1e-3)
     assert num.alpha_nominal / DEG == pytest.approx(-20.0, abs=1e-3)
@@ -629,3 +631,59 @@ def test_motion_is_frozen_and_replaceable():
     assert faster.period == pytest.approx(mot.period / 2, rel=ROUNDOFF)
     with pytest.raises(InputError, match="frequency must be > 0"):
         dataclasses.replace(mot, frequency=0.0)
+
+
+# ---------------------------------------------------------------------------- more properties
+def test_roll_only_tip_speed_is_omega_phi0_times_the_lever():
+    # [computed] phi = phi0 sin(omega t): a point at distance L from the roll axis moves at L |phi_dot|,
+    # peak L phi0 omega at phi = 0, in the y-z plane.
+    mot = Motion(frequency=3.0, roll_amplitude=70 * DEG)
+    tip = np.array([[0.4, 0.0, 0.25]])
+    times, speeds = mot.speed_extrema(tip)
+    assert speeds.max() == pytest.approx(0.25 * 70 * DEG * mot.angular_frequency, rel=1e-10)
+    v = mot.velocity(tip, np.linspace(0.0, mot.period, 9))[:, 0]
+    np.testing.assert_allclose(v[:, 0], 0.0, atol=ROUNDOFF)
+
+
+def test_static_body_has_zero_speeds_and_undefined_feathering():
+    mot = Motion(frequency=1.0)
+    num = flow_numbers(mot, 1.0, 1.0, 1e-3, surface_points=body_points(m=3))
+    assert num.max_te_speed == 0.0 and num.max_surface_speed == 0.0
+    assert num.max_te_speed_relative == pytest.approx(1.0, rel=ROUNDOFF)  # the stream passes a still body
+    assert num.strouhal == num.strouhal_te == num.alpha_max == 0.0
+    assert math.isnan(num.feathering)
+    pitching = flow_numbers(Motion(frequency=1.0, pitch_amplitude=0.2), 1.0, 1.0, 1e-3)
+    assert pitching.feathering == math.inf
+
+
+def test_speed_extrema_needs_enough_samples():
+    with pytest.raises(InputError, match="samples must be >= 16"):
+        kd_motion().speed_extrema([[1.0, 0.0, 0.0]], samples=4)
+
+
+@settings(max_examples=40, deadline=None, derandomize=True)
+@given(
+    f=st.floats(0.05, 20.0),
+    h0=st.floats(0.0, 2.0),
+    th0=st.floats(0.0, 1.5),
+    phase=st.floats(-7.0, 7.0),
+    ph0=st.floats(0.0, 3.0),
+    pivot=st.tuples(*[st.floats(-1.0, 1.0)] * 3),
+    root=st.tuples(*[st.floats(-1.0, 1.0)] * 3),
+    frac=st.floats(0.0, 1.0),
+)
+def test_any_motion_is_rigid_with_a_consistent_rate(f, h0, th0, phase, ph0, pivot, root, frac):
+    # Common practice, no single source: R orthonormal with det +1 and v = v_ref + Omega x (x - x_ref).
+    mot = Motion(
+        frequency=f, plunge_amplitude=h0, pitch_amplitude=th0, phase=phase, pivot=pivot,
+        roll_amplitude=ph0, roll_phase=-phase, roll_root=root,
+    )
+    t = frac * mot.period
+    R = mot.pose(t)[:3, :3]
+    np.testing.assert_allclose(R.T @ R, np.eye(3), atol=ROUNDOFF)
+    assert np.linalg.det(R) == pytest.approx(1.0, abs=ROUNDOFF)
+    pts = body_points(m=4)
+    v, x = mot.velocity(pts, t), mot.transform(pts, t)
+    om = mot.angular_velocity(t)
+    scale = 1.0 + np.abs(v).max()
+    np.testing.assert_allclose(v, v[:1] + np.cross(om, x - x[:1]), atol=1e-12 * scale)
