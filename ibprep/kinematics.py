@@ -181,9 +181,10 @@ class SmoothSquareWave(Waveform):
     Notes
     -----
     The tanh-saturated sine is our own choice among such families (the
-    non-sinusoidal flapping literature uses several; none is copied here). The
-    ramp between dwells lasts roughly ``2 / beta`` radians of phase for large
-    ``beta``, and the peak rate is ``beta / tanh(beta)`` times the sine's.
+    non-sinusoidal flapping literature uses several; none is copied here). For
+    large ``beta`` the ramp between the dwells (``|g| < 0.96``) lasts about
+    ``4 / beta`` radians of phase, and the peak rate ``g'(0) = beta / tanh(beta)``
+    is that many times the sine's.
     """
 
     sharpness: float = 0.0
@@ -218,7 +219,9 @@ class Tabulated(Waveform):
 
     The samples are normalised by the spline's peak ``max |g|`` (found from the
     roots of its derivative, not from the samples), so the waveform has peak 1
-    and the caller's amplitude is that peak. Derivatives are the spline's own
+    and the caller's amplitude is that peak: to reproduce the samples in their
+    own unit, give the motion ``amplitude = waveform.peak`` (as
+    :meth:`Motion.from_table` does). Derivatives are the spline's own
     (``scipy.interpolate.CubicSpline(bc_type="periodic")``), so velocity is
     continuous and acceleration piecewise linear.
 
