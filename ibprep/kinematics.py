@@ -632,6 +632,28 @@ class Motion:
         tt, shape = _times(t)
         return self._dof(tt)[2][0].reshape(shape)
 
+    def effective_angle(self, t, speed) -> np.ndarray:
+        """Quasi-steady effective angle of attack ``alpha_eff = theta(t) - atan(h_dot(t) / U)``.
+
+        Nose-up pitch and upward plunge positive, so moving up lowers the angle.
+        The roll stroke and the pitch-rate (pivot offset) contribution are ignored.
+
+        Parameters
+        ----------
+        t : float or (n,) float — seconds.
+        speed : float — metres per second, > 0; free stream ``U`` along +x.
+
+        Returns
+        -------
+        float array of the shape of ``t`` — radians.
+        """
+        u = _finite_float(speed, "speed", unit="metres per second")
+        if u <= 0.0:
+            raise InputError(f"speed must be > 0, got {speed!r}")
+        tt, shape = _times(t)
+        (_, hd, _), (th, _, _), _ = self._dof(tt)
+        return (th - np.arctan(hd / u)).reshape(shape)
+
     def _kinematics(self, tt: np.ndarray, order: int):
         """Rotation R, offset d (x_world = R (x - q) + d) and their derivatives up to ``order``.
 
@@ -964,9 +986,7 @@ def flow_numbers(motion: Motion, chord, speed, viscosity, *, te_point=None, surf
     h0, th0 = motion.plunge_amplitude, motion.pitch_amplitude
 
     def alpha_abs(tt):
-        tt = np.atleast_1d(tt)
-        (_, hd, _), (th, _, _), _ = motion._dof(tt)
-        return np.abs(th - np.arctan(hd / u))
+        return np.abs(motion.effective_angle(np.atleast_1d(tt), u))
 
     alpha_max, t_alpha = _cycle_max(alpha_abs, T)
 

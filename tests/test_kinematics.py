@@ -336,6 +336,10 @@ def test_effective_angle_of_attack_table(strouhal, theta0_deg, alpha_max_deg, at
     # alpha = F(cos tau) with F odd, so |alpha| peaks at +-tau*, pi +- tau*; the table prints one of
     # them (to 0.1 deg): compare |cos|.
     assert abs(math.cos(num.alpha_max_phase)) == pytest.approx(abs(math.cos(at_deg * DEG)), abs=2e-3)
+    # the time series: mid-stroke (tau = 0, moving up fastest, theta = theta0) gives the nominal angle
+    alpha = mot.effective_angle(np.array([0.0, num.alpha_max_phase / mot.angular_frequency]), 1.0)
+    assert alpha[0] == pytest.approx(num.alpha_nominal, abs=ROUNDOFF)
+    assert abs(alpha[1]) == pytest.approx(num.alpha_max, rel=ROUNDOFF)
 
 
 def test_kinsey_dumas_point_derived_numbers():
@@ -598,6 +602,8 @@ def test_bad_call_input():
         mot.pose([0.0, float("nan")])
     with pytest.raises(InputError, match="speed must be > 0"):
         flow_numbers(mot, 1.0, 0.0, 1e-3)
+    with pytest.raises(InputError, match="speed must be > 0"):
+        mot.effective_angle(0.0, -1.0)
     with pytest.raises(InputError, match="viscosity must be finite"):
         flow_numbers(mot, 1.0, 1.0, float("nan"))
     with pytest.raises(InputError, match="te_point must be 3 numbers"):
