@@ -8,16 +8,36 @@ from __future__ import annotations
 from .classify import CellTag
 from .errors import IbprepError, IbprepWarning, InputError, MissingDependencyError
 from .grid import Grid, NestedGrid, refine
+from .kinematics import (
+    FlowNumbers,
+    Motion,
+    Sine,
+    SmoothSquareWave,
+    Tabulated,
+    Waveform,
+    WaveformTable,
+    flow_numbers,
+    load_waveform_table,
+)
 
 __version__ = "0.1.0.dev0"
 
 __all__ = [
     "CellTag",
+    "FlowNumbers",
     "Grid",
     "IbprepError",
     "IbprepWarning",
     "InputError",
     "MissingDependencyError",
+    "Motion",
     "NestedGrid",
+    "Sine",
+    "SmoothSquareWave",
+    "Tabulated",
+    "Waveform",
+    "WaveformTable",
+    "flow_numbers",
+    "load_waveform_table",
     "refine",
 ]
