@@ -1,0 +1,404 @@
+"""The ``ibprep`` command: demo, check, size, export.
+
+A thin layer: each subcommand has ``add_args(parser)`` and ``run(args) -> int``
+and calls the public API. Exit codes: 0 every check passed (warnings allowed),
+1 at least one check failed, 2 bad input or usage (one message on stderr, no
+traceback; ``--debug`` shows it).
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+
+from .errors import IbprepError, InputError
+
+__all__ = ["main"]
+
+EXIT_OK, EXIT_FAILED, EXIT_INPUT = 0, 1, 2
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse that raises instead of exiting, so usage errors map to exit code 2 with one line."""
+
+    def error(self, message):  # noqa: D401 - argparse API
+        raise InputError(f"{self.prog}: {message} (see {self.prog} --help)")
+
+
+def _progress(enabled: bool):
+    """A progress(done, total) callback drawing a bar on stderr when it is a terminal."""
+    if not enabled or not sys.stderr.isatty():
+        return None, lambda: None
+    from tqdm import tqdm
+
+    bar = tqdm(total=0, unit="step", file=sys.stderr, leave=False, desc="checking steps")
+
+    def update(done, total):
+        bar.total = total
+        bar.n = done
+        bar.refresh()
+
+    return update, bar.close
+
+
+# --------------------------------------------------------------------------- formatting
+_MARK = {"pass": "ok  ", "warn": "WARN", "fail": "FAIL"}
+
+
+def format_report(report) -> str:
+    """The report as an aligned plain-text table plus the key figures (no colour needed)."""
+    rows = []
+    w_id = max(len(c.id) for c in report.checks)
+    for c in report.checks:
+        rows.append(f"  {_MARK[c.status]}  {c.id:<{w_id}}  {c.message}")
+        if c.status != "pass" and c.hint:
+            rows.append(f"        {'':<{w_id}}  -> {c.hint}")
+    f = report.figures
+    n = f.get("numbers", {})
+    g = f.get("grid", {})
+    t = f.get("time", {})
+    st = f.get("stencils", {})
+    lines = [f"ibprep pre-flight: {report.title or 'case'}", "", "checks:"] + rows + ["", "figures:"]
+
+    def fig(label, value, fmt="{:.4g}"):
+        if value is None:
+            return
+        lines.append(f"  {label:<34} {fmt.format(value) if not isinstance(value, str) else value}")
+
+    fig("Reynolds number U c / nu", n.get("reynolds"), "{:.5g}")
+    fig("f c / U", n.get("frequency_ratio_fc_U"))
+    fig("k = 2 pi f c / U (chord)", n.get("k_chord"))
+    fig("h0 / c", n.get("plunge_ratio_h0_c"))
+    fig("k h", n.get("kh"))
+    fig("Strouhal 2 f h0 / U", n.get("strouhal_2fh0_U"))
+    fig("Strouhal, TE excursion", n.get("strouhal_te"))
+    fig("max |alpha_eff| (deg)", n.get("alpha_eff_max_deg"), "{:.2f}")
+    fig("feathering chi", n.get("feathering_chi"))
+    fig("peak TE speed / U", n.get("max_te_speed_U"))
+    fig("peak surface speed / U", n.get("max_surface_speed_U"))
+    if g:
+        fig("grid levels", g.get("levels"), "{}")
+        fig("spacing per level (m)", ", ".join(f"{h:.4g}" for h in g.get("spacing_m", [])))
+        fig("cells per level", ", ".join(f"{c:,}" for c in g.get("cells_per_level", [])))
+        fig("cells in all levels", g.get("total_cells"), "{:,}")
+    if t:
+        fig("time step (s)", t.get("step_s"))
+        fig("steps per cycle", t.get("steps_per_cycle"), "{:,}")
+        fig("Courant number", t.get("courant"), "{:.3f}")
+    if st:
+        fig("checked step pairs", st.get("checked_steps"), "{}")
+        fig("stencils built", st.get("stencils_built"), "{:,}")
+        fig("max interface cells per step", st.get("max_interface_cells"), "{:,}")
+        fig("max fresh cells per step", st.get("max_fresh_cells"), "{:,}")
+    lines += ["", f"verdict: {report.verdict.upper()}", "", "caution: " + report.caution]
+    return "\n".join(lines)
+
+
+# --------------------------------------------------------------------------- check
+def _check_add_args(p):
+    p.add_argument("case", help="case file (TOML)")
+    p.add_argument("--json", metavar="FILE", help="also write the report as JSON to FILE")
+    p.add_argument("--plots", metavar="DIR", help="write the PNG plots into DIR")
+    p.add_argument("--all-steps", action="store_true", help="check every solver step of one cycle")
+    _engine_args(p)
+
+
+def _engine_args(p):
+    p.add_argument("--workers", type=int, default=1, metavar="N", help="local processes for the step sweep")
+    p.add_argument("--scheduler", metavar="ADDRESS", help="Dask scheduler address, e.g. tcp://10.0.0.5:8786")
+    p.add_argument("--no-progress", action="store_true", help="no progress bar on stderr")
+
+
+def _run_check(args) -> int:
+    from .case import load_case
+    from .export import write_json_report
+    from .preflight import preflight
+
+    case = load_case(args.case)
+    if args.json:
+        _writable(args.json)
+    if args.plots:
+        _folder(args.plots)
+    report = _preflight(case, args, preflight)
+    if args.json:
+        write_json_report(report, args.json)
+    if args.plots:
+        _write_plots(case, report, Path(args.plots))
+    print(format_report(report))
+    return EXIT_FAILED if report.verdict == "fail" else EXIT_OK
+
+
+def _preflight(case, args, preflight):
+    update, close = _progress(not args.no_progress)
+    try:
+        return preflight(case, all_steps=args.all_steps or None, workers=args.workers, scheduler=args.scheduler,
+                         progress=update)
+    finally:
+        close()
+
+
+def _writable(path):
+    p = Path(path)
+    if not (p.parent if str(p.parent) else Path(".")).is_dir():
+        raise InputError(f"cannot write {str(p)!r}: its folder does not exist")
+
+
+def _folder(path) -> Path:
+    p = Path(path)
+    if p.exists() and not p.is_dir():
+        raise InputError(f"{str(p)!r} exists and is not a folder")
+    p.mkdir(parents=True, exist_ok=True)
+    return p
+
+
+def _write_plots(case, report, folder: Path) -> list[Path]:
+    from .classify import classify
+    from .export import plot_motion, plot_steps, plot_tags_slice
+    from .sizing import swept_envelope
+    from .triangles import transform_points
+
+    out = [plot_motion(case.motion, case.chord, case.flow.speed, folder / "motion.png", title=case.title)]
+    if report.steps:
+        limit = next((c.limit for c in report.checks if c.id == "stencil.condition"), None)
+        out.append(plot_steps(report.steps, case.motion.period, folder / "steps.png", condition_limit=limit))
+        worst = max(report.steps, key=lambda s: (s.n_bad, s.worst_condition))
+        level = report.figures["resolution"]["level_at_body"]
+        grid = case.grid.levels[level]
+        v = transform_points(case.motion.pose(worst.time), case.surface.vertices)
+        tags = classify((v, case.surface.faces), grid)
+        env = swept_envelope(case.surface, case.motion, case.grid.finest_spacing)
+        z = float(0.5 * (v[:, 2].min() + v[:, 2].max()))
+        pad = 0.3 * case.chord
+        zoom = ((v[:, 0].min() - pad, v[:, 1].min() - pad), (v[:, 0].max() + pad, v[:, 1].max() + pad))
+        out.append(plot_tags_slice(tags, grid, z, folder / "tags.png", nested=case.grid,
+                                   envelope=(env.lower, env.upper), bad_points=worst.bad_points,
+                                   title=f"worst checked step t = {worst.time:.4g} s", zoom=zoom))
+    return out
+
+
+# --------------------------------------------------------------------------- size
+def _size_add_args(p):
+    p.add_argument("case", help="case file (TOML)")
+
+
+def _run_size(args) -> int:
+    from .case import load_case
+    from .sizing import propose_boxes, required_spacing, resolution_lengths, swept_envelope
+
+    case = load_case(args.case)
+    c = case.chord
+    sec = case.section
+    le = float(sec.le_radius) * c if sec is not None else None
+    lengths = resolution_lengths(c, case.flow.speed, case.flow.viscosity, case.motion.frequency, le)
+    target, rule, per_rule = required_spacing(lengths, case.checks)
+    if case.sizing.target_spacing is not None:
+        target, rule = case.sizing.target_spacing, "[sizing] target_spacing"
+    env = swept_envelope(case.surface, case.motion, target)
+    s = case.sizing
+    res = propose_boxes(case.grid.base, env, c, target, upstream=s.upstream, lateral=s.lateral, wake=s.wake,
+                        buffer_cells=s.buffer_cells, rule=rule)
+    ng = res.grid
+    print(f"ibprep size: {case.title or args.case}")
+    print("")
+    print("what the body needs:")
+    for name, h in per_rule.items():
+        print(f"  {name:<22} h <= {h:.4g} m  (c/{c / h:.0f})")
+    print(f"  -> finest spacing {ng.finest_spacing:.4g} m (c/{c / ng.finest_spacing:.0f}), set by the {rule} rule")
+    print("")
+    print("swept envelope over one cycle (m):")
+    print(f"  lower {tuple(round(float(x), 5) for x in env.lower)}")
+    print(f"  upper {tuple(round(float(x), 5) for x in env.upper)}")
+    print("")
+    print(f"  {'level':>5}  {'spacing (m)':>12}  {'cells':>14}  {'leaf cells':>14}  box")
+    leaf = ng.leaf_cells_per_level()
+    for lvl, g in enumerate(ng.levels):
+        box = f"{tuple(round(x, 5) for x in g.lower)} .. {tuple(round(x, 5) for x in g.upper)}"
+        print(f"  {lvl:>5}  {g.spacing:>12.5g}  {g.size:>14,}  {leaf[lvl]:>14,}  {box}")
+    mem = ng.memory_estimate()
+    print(f"  total {ng.total_cells:,} cells ({ng.leaf_cells:,} leaf); tags need {mem.tags / 2**20:.1f} MiB per step")
+    if any(res.clipped):
+        print("  note: some boxes were cut back to the domain; consider a larger domain")
+    print("")
+    print("paste into the case file, replacing the [[grid.refine]] blocks:")
+    print("")
+    for lo, hi in res.boxes:
+        print("[[grid.refine]]")
+        print(f"lower = [{', '.join(f'{x:.6g}' for x in lo)}]")
+        print(f"upper = [{', '.join(f'{x:.6g}' for x in hi)}]")
+    return EXIT_OK
+
+
+# --------------------------------------------------------------------------- export
+def _export_add_args(p):
+    p.add_argument("case", help="case file (TOML)")
+    p.add_argument("--out", required=True, metavar="DIR", help="folder for the files")
+    p.add_argument("--at", type=float, nargs="+", metavar="T",
+                   help="times in seconds (default: --count instants over one cycle)")
+    p.add_argument("--count", type=int, default=8, metavar="N", help="instants over one cycle when --at is not given")
+    p.add_argument("--what", default="stl,tags,stencils,markers",
+                   help="comma-separated subset of stl,tags,stencils,markers")
+    p.add_argument("--margin", type=float, default=0.25, metavar="CHORDS",
+                   help="tags and stencils are kept in the body's box plus this margin")
+
+
+def _run_export(args) -> int:
+    import numpy as np
+
+    from .case import load_case
+    from .classify import classify
+    from .export import write_markers_csv, write_tags_vtu, write_time_series
+    from .geometry import save_surface, surface_markers
+    from .sizing import swept_envelope
+    from .stencils import build_stencils
+    from .triangles import transform_points
+
+    allowed = {"stl", "tags", "stencils", "markers"}
+    what = {w.strip() for w in args.what.split(",") if w.strip()}
+    if not what or what - allowed:
+        raise InputError(f"--what takes a comma-separated subset of {', '.join(sorted(allowed))}, got {args.what!r}")
+    if args.count < 1:
+        raise InputError(f"--count must be >= 1, got {args.count}")
+    case = load_case(args.case)
+    out = _folder(args.out)
+    T = case.motion.period
+    times = np.asarray(args.at, float) if args.at else np.arange(args.count) * T / args.count
+    env = swept_envelope(case.surface, case.motion, case.grid.finest_spacing)
+    level = case.grid.level_containing(env.lower, env.upper)
+    grid = case.grid.levels[max(level, 0)]
+    written = []
+    series = []
+    mesh = case.surface
+    for i, t in enumerate(times):
+        v = transform_points(case.motion.pose(float(t)), mesh.vertices)
+        stem = f"step{i:04d}"
+        if "stl" in what:
+            moved = mesh.copy()
+            moved.vertices = v
+            written.append(save_surface(moved, out / f"body_{stem}.stl"))
+        if what & {"tags", "stencils"}:
+            tags = classify((v, mesh.faces), grid)
+            m = args.margin * case.chord
+            region = grid.index_box(v.min(axis=0) - m, v.max(axis=0) + m)
+            if "stencils" in what:
+                st = build_stencils(tags, grid, (v, mesh.faces))
+                written.append(st.save(out / f"stencils_{stem}.npz"))
+                cond = np.zeros(grid.shape)
+                cond.reshape(-1)[st.cells] = st.condition
+                okf = np.zeros(grid.shape)
+                okf.reshape(-1)[st.cells] = st.ok
+                data = {"condition": cond, "stencil_ok": okf}
+            else:
+                data = None
+            if "tags" in what:
+                f = write_tags_vtu(tags, grid, out / f"tags_{stem}.vtu", region=region, cell_data=data)
+                written.append(f)
+                series.append((float(t), f))
+        if "markers" in what and i == 0:
+            p, n, a = surface_markers(mesh, grid.spacing)
+            written.append(write_markers_csv(p, n, a, out / "markers_body_frame.csv"))
+    if series:
+        written.append(write_time_series(series, out / "tags.pvd"))
+    print(f"ibprep export: wrote {len(written)} files into {out}")
+    for f in written:
+        print(f"  {f}")
+    return EXIT_OK
+
+
+# --------------------------------------------------------------------------- demo
+def _demo_add_args(p):
+    p.add_argument("--out", default="ibprep-demo", metavar="DIR", help="folder for the demo's files (default: %(default)s)")
+    _engine_args(p)
+
+
+def _run_demo(args) -> int:
+    from .case import load_case
+    from .demo import DEMO_CASE
+    from .export import atomic_write, write_json_report, write_tags_vtu
+    from .geometry import save_surface
+    from .preflight import preflight
+
+    out = _folder(args.out)
+    case_path = atomic_write(out / "case.toml", lambda tmp: Path(tmp).write_text(DEMO_CASE, encoding="utf-8"))
+    case = load_case(case_path)
+    print(f"ibprep demo: {case.title}")
+    print(f"  (invented data; case file {case_path})", flush=True)
+    args.all_steps = False
+    report = _preflight(case, args, preflight)
+    files = [case_path, write_json_report(report, out / "report.json")]
+    files += _write_plots(case, report, out)
+    files.append(save_surface(case.surface, out / "body.stl"))
+    # The tags of the worst checked step near the body, for ParaView.
+    import numpy as np
+
+    from .classify import classify
+    from .triangles import transform_points
+
+    worst = max(report.steps, key=lambda s: (s.n_bad, s.worst_condition)) if report.steps else None
+    if worst is not None:
+        level = report.figures["resolution"]["level_at_body"]
+        grid = case.grid.levels[level]
+        v = transform_points(case.motion.pose(worst.time), case.surface.vertices)
+        tags = classify((v, case.surface.faces), grid)
+        m = 0.1 * case.chord
+        region = grid.index_box(np.min(v, axis=0) - m, np.max(v, axis=0) + m)
+        files.append(write_tags_vtu(tags, grid, out / "tags_worst_step.vtu", region=region))
+    print(format_report(report))
+    print("")
+    print(f"files written into {out}:")
+    for f in files:
+        print(f"  {f}")
+    print(f"edit {case_path} and rerun:  ibprep check {case_path}")
+    return EXIT_FAILED if report.verdict == "fail" else EXIT_OK
+
+
+# --------------------------------------------------------------------------- main
+_COMMANDS = {
+    "demo": (_demo_add_args, _run_demo, "build the demo case, run the pre-flight, write its outputs"),
+    "check": (_check_add_args, _run_check, "the pre-flight gate: exit 0 pass/warn, 1 fail, 2 bad input"),
+    "size": (_size_add_args, _run_size, "refinement boxes and cell counts from the swept envelope"),
+    "export": (_export_add_args, _run_export, "body STL, tags (VTU), stencil tables (NPZ) and markers at chosen times"),
+}
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser of the ``ibprep`` command."""
+    parser = _Parser(prog="ibprep", description="Prepare and check moving-body cases for sharp-interface "
+                     "immersed-boundary solvers.")
+    parser.add_argument("--debug", action="store_true", help="show full tracebacks")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    for name, (add_args, run, help_) in _COMMANDS.items():
+        p = sub.add_parser(name, help=help_, description=help_)
+        add_args(p)
+        p.set_defaults(run=run)
+    return parser
+
+
+def main(argv=None) -> int:
+    """Run the ``ibprep`` command; returns the exit code (0 pass, 1 failed checks, 2 bad input)."""
+    argv = sys.argv[1:] if argv is None else list(argv)
+    debug = "--debug" in argv
+    try:
+        parser = build_parser()
+        if not argv or argv in (["-h"], ["--help"]):
+            parser.print_help()
+            return EXIT_OK if argv else EXIT_INPUT
+        args = parser.parse_args(argv)
+        if getattr(args, "command", None) is None:
+            raise InputError("ibprep: give a command: demo, check, size or export (see ibprep --help)")
+        return args.run(args)
+    except InputError as exc:
+        if debug:
+            raise
+        print(f"ibprep: error: {exc}", file=sys.stderr)
+        return EXIT_INPUT
+    except IbprepError as exc:
+        if debug:
+            raise
+        print(f"ibprep: error: {exc}", file=sys.stderr)
+        return EXIT_FAILED
+    except SystemExit as exc:  # argparse's --help inside a subcommand
+        return int(exc.code or 0)
+    except KeyboardInterrupt:
+        print("ibprep: interrupted", file=sys.stderr)
+        return 130

@@ -1,0 +1,284 @@
+"""Files a person or a solver reads: JSON report, PNG plots, body STL, cell tags for ParaView, stencil tables, markers.
+
+Every file is written to a temporary name in the target folder and renamed into
+place, so a failed run never half-writes a file or destroys an existing one.
+matplotlib and meshio are imported inside the functions that need them.
+"""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from pathlib import Path
+
+import numpy as np
+
+from .classify import CellTag
+from .errors import InputError
+
+__all__ = [
+    "atomic_write",
+    "write_json_report",
+    "plot_motion",
+    "plot_steps",
+    "plot_tags_slice",
+    "write_tags_vtu",
+    "write_time_series",
+    "write_markers_csv",
+]
+
+
+def atomic_write(path, write) -> Path:
+    """Write a file through ``write(tmp_path)`` into a temporary sibling, then rename it over ``path``.
+
+    Parameters
+    ----------
+    path : str or Path — the destination.
+    write : callable — called with the temporary path (str); must create that file.
+
+    Returns
+    -------
+    Path — the destination.
+
+    Raises
+    ------
+    InputError
+        The folder does not exist or cannot be written. Whatever ``write`` raises
+        is re-raised after the temporary file is removed; ``path`` is untouched.
+    """
+    path = Path(path)
+    folder = path.parent if str(path.parent) else Path(".")
+    if not folder.is_dir():
+        raise InputError(f"cannot write {str(path)!r}: folder {str(folder)!r} does not exist")
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part" + path.suffix, dir=folder)
+    except OSError as exc:
+        raise InputError(f"cannot write in folder {str(folder)!r}: {exc.strerror}") from None
+    os.close(fd)
+    try:
+        write(tmp)
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+    return path
+
+
+def write_json_report(report, path) -> Path:
+    """Write a :class:`~ibprep.Report` as JSON (DESIGN §5 object), atomically."""
+    text = report.to_json()
+
+    def _w(tmp):
+        Path(tmp).write_text(text + "\n", encoding="utf-8")
+
+    return atomic_write(path, _w)
+
+
+def _pyplot():
+    import matplotlib
+
+    matplotlib.use("Agg", force=True)
+    import matplotlib.pyplot as plt
+
+    return plt
+
+
+def _save_figure(fig, path) -> Path:
+    plt = _pyplot()
+    try:
+        return atomic_write(path, lambda tmp: fig.savefig(tmp, dpi=110, format="png"))
+    finally:
+        plt.close(fig)
+
+
+def plot_motion(motion, chord: float, speed: float, path, *, title: str = "") -> Path:
+    """PNG of one cycle: plunge h/c, pitch θ and effective angle of attack α_eff (degrees) against t/T."""
+    plt = _pyplot()
+    T = motion.period
+    t = np.linspace(0.0, T, 721)
+    h = np.asarray(motion.plunge(t)) / chord
+    th = np.degrees(np.asarray(motion.pitch(t)))
+    al = np.degrees(np.asarray(motion.effective_angle(t, speed)))
+    fig, ax = plt.subplots(2, 1, figsize=(7.5, 5.2), sharex=True)
+    ax[0].plot(t / T, h, color="tab:blue", label="plunge h/c")
+    ax[0].set_ylabel("h / c")
+    ax[0].grid(alpha=0.3)
+    ax[0].legend(loc="upper right", fontsize=8)
+    ax[1].plot(t / T, th, color="tab:orange", label="pitch θ (nose-up +)")
+    ax[1].plot(t / T, al, color="tab:green", label="α_eff = θ − atan(ḣ/U)")
+    ax[1].set_ylabel("degrees")
+    ax[1].set_xlabel("t / T")
+    ax[1].grid(alpha=0.3)
+    ax[1].legend(loc="upper right", fontsize=8)
+    fig.suptitle(title or "prescribed motion over one cycle", fontsize=10)
+    fig.tight_layout()
+    return _save_figure(fig, path)
+
+
+def plot_steps(steps, period: float, path, *, condition_limit: float | None = None) -> Path:
+    """PNG of per-step figures against phase: interface and fresh cell counts, worst condition number."""
+    plt = _pyplot()
+    if not steps:
+        raise InputError("no checked steps to plot")
+    ph = np.array([(s.time % period) / period for s in steps])
+    order = np.argsort(ph)
+    ph = ph[order]
+    n_int = np.array([s.n_interface for s in steps])[order]
+    n_fr = np.array([s.n_fresh for s in steps])[order]
+    cond = np.array([s.worst_condition for s in steps])[order]
+    bad = np.array([s.n_bad for s in steps])[order]
+    fig, ax = plt.subplots(3, 1, figsize=(7.5, 6.4), sharex=True)
+    ax[0].plot(ph, n_int, "o-", ms=3, label="interface cells")
+    ax[0].set_ylabel("cells")
+    ax[0].legend(fontsize=8)
+    ax[1].plot(ph, n_fr, "o-", ms=3, color="tab:purple", label="fresh cells (solid → fluid)")
+    ax[1].set_ylabel("cells")
+    ax[1].legend(fontsize=8)
+    ax[2].semilogy(ph, cond, "o-", ms=3, color="tab:red", label="worst stencil condition number")
+    if condition_limit:
+        ax[2].axhline(condition_limit, color="k", ls="--", lw=0.8, label="limit")
+    if bad.any():
+        ax[2].plot(ph[bad > 0], cond[bad > 0], "kx", ms=7, label="steps with failed stencils")
+    ax[2].set_xlabel("phase t / T of the checked step")
+    ax[2].legend(fontsize=8)
+    for a in ax:
+        a.grid(alpha=0.3)
+    fig.suptitle("per-step figures over the checked cycle", fontsize=10)
+    fig.tight_layout()
+    return _save_figure(fig, path)
+
+
+def plot_tags_slice(tags, grid, z: float, path, *, nested=None, envelope=None, bad_points=(), title: str = "",
+                    zoom=None) -> Path:
+    """PNG of a z-slice of the tags, failed-stencil cells marked, refinement boxes and swept envelope drawn.
+
+    Parameters
+    ----------
+    tags : grid.shape uint8 — CellTag codes of ``grid``.
+    grid : Grid — the level the tags belong to (3-D or 2-D).
+    z : float — metres; the slice plane (ignored for 2-D).
+    nested : NestedGrid, optional — its boxes are drawn in the left panel.
+    envelope : (lower, upper) pair, optional — swept envelope, drawn dashed.
+    bad_points : (k, 3) float — metres; cells whose stencil failed (marked ×).
+    zoom : (lower, upper) of (2,) float, optional — the x–y window of the right panel.
+    """
+    plt = _pyplot()
+    from matplotlib.colors import ListedColormap
+    from matplotlib.patches import Rectangle
+
+    tags = np.asarray(tags)
+    if grid.ndim == 3:
+        k = int(np.clip(np.floor((z - grid.lower[2]) / grid.spacing), 0, grid.shape[2] - 1))
+        sl = tags[:, :, k]
+    else:
+        sl = tags
+    fig, axes = plt.subplots(1, 2, figsize=(11, 4.8), gridspec_kw={"width_ratios": [1.2, 1]})
+    ax = axes[0]
+    if nested is not None:
+        b = nested.base
+        ax.add_patch(Rectangle(b.lower[:2], b.extent[0], b.extent[1], fill=False, lw=1.2, color="k"))
+        for lvl, g in enumerate(nested.levels[1:], start=1):
+            ax.add_patch(Rectangle(g.lower[:2], g.extent[0], g.extent[1], fill=False, lw=1.0,
+                                   color=plt.cm.viridis(lvl / max(1, len(nested.levels))), label=f"level {lvl}, h = {g.spacing:.3g} m"))
+        ax.set_xlim(b.lower[0], b.upper[0])
+        ax.set_ylim(b.lower[1], b.upper[1])
+    if envelope is not None:
+        lo, hi = envelope
+        ax.add_patch(Rectangle(lo[:2], hi[0] - lo[0], hi[1] - lo[1], fill=False, ls="--", color="tab:red",
+                               label="swept envelope"))
+    ax.set_aspect("equal")
+    ax.set_xlabel("x (m)")
+    ax.set_ylabel("y (m)")
+    ax.set_title("domain, refinement boxes", fontsize=9)
+    ax.legend(fontsize=7, loc="upper right")
+    ax = axes[1]
+    cmap = ListedColormap(["#dbe9f6", "#555555", "#f0a030"])
+    extent = (grid.lower[0], grid.upper[0], grid.lower[1], grid.upper[1])
+    ax.imshow(sl.T, origin="lower", extent=extent, cmap=cmap, vmin=0, vmax=2, interpolation="nearest")
+    bp = np.asarray(bad_points, dtype=float).reshape(-1, grid.ndim if grid.ndim == 2 else 3)
+    if bp.size:
+        near = np.abs(bp[:, 2] - z) <= grid.spacing if bp.shape[1] == 3 else np.ones(len(bp), bool)
+        ax.plot(bp[near, 0], bp[near, 1], "x", color="red", ms=6, label="failed stencil")
+        ax.legend(fontsize=7, loc="upper right")
+    if zoom is not None:
+        ax.set_xlim(zoom[0][0], zoom[1][0])
+        ax.set_ylim(zoom[0][1], zoom[1][1])
+    ax.set_aspect("equal")
+    ax.set_xlabel("x (m)")
+    ax.set_title(f"tags at z = {z:.4g} m: fluid (light), solid (grey), interface (orange)", fontsize=9)
+    fig.suptitle(title, fontsize=10)
+    fig.tight_layout()
+    return _save_figure(fig, path)
+
+
+def write_tags_vtu(tags, grid, path, *, region=None, cell_data=None) -> Path:
+    """Write the non-fluid cells of a region (solid and interface) as hexahedra in a VTU file (ParaView).
+
+    Parameters
+    ----------
+    tags : grid.shape uint8 — CellTag codes.
+    grid : Grid — 3-D (a 2-D grid is written as one layer of unit thickness h).
+    path : str or Path — ``.vtu``.
+    region : tuple of slices, optional — index box to export (default: the whole grid);
+        only its solid and interface cells are written, so a file is proportional
+        to the body's cells, not to the grid.
+    cell_data : dict of name -> grid.shape array, optional — per-cell figures to add.
+
+    Returns
+    -------
+    Path
+    """
+    import meshio
+
+    tags = np.asarray(tags)
+    if tags.shape != grid.shape:
+        raise InputError(f"tags must have the grid's shape {grid.shape}, got {tags.shape}")
+    shape3 = grid.shape if grid.ndim == 3 else (*grid.shape, 1)
+    t3 = tags.reshape(shape3)
+    region = tuple(region) if region is not None else tuple(slice(0, n) for n in shape3)
+    if len(region) == 2:
+        region = (*region, slice(0, 1))
+    sub = t3[region]
+    keep = np.argwhere(sub != CellTag.FLUID)
+    offset = np.array([r.start or 0 for r in region])
+    idx = keep + offset
+    h = grid.spacing
+    lower = np.array([*grid.lower, *(() if grid.ndim == 3 else (-0.5 * h,))], dtype=float)
+    corners = np.array([[0, 0, 0], [1, 0, 0], [1, 1, 0], [0, 1, 0], [0, 0, 1], [1, 0, 1], [1, 1, 1], [0, 1, 1]])
+    pts = (lower + (idx[:, None, :] + corners[None]) * h).reshape(-1, 3)
+    cells = np.arange(len(pts)).reshape(-1, 8)
+    data = {"tag": [t3[tuple(idx.T)].astype(np.int32)]}
+    for name, arr in (cell_data or {}).items():
+        a = np.asarray(arr).reshape(shape3)
+        data[name] = [a[tuple(idx.T)].astype(np.float64)]
+    mesh = meshio.Mesh(points=pts, cells=[("hexahedron", cells)], cell_data=data)
+    return atomic_write(path, lambda tmp: meshio.write(tmp, mesh, file_format="vtu", binary=True))
+
+
+def write_time_series(entries, path) -> Path:
+    """Write a ParaView collection (``.pvd``) listing (time, file) pairs, atomically."""
+    lines = ['<?xml version="1.0"?>', '<VTKFile type="Collection" version="0.1">', "  <Collection>"]
+    for t, f in entries:
+        lines.append(f'    <DataSet timestep="{float(t):.9g}" part="0" file="{Path(f).name}"/>')
+    lines += ["  </Collection>", "</VTKFile>", ""]
+    text = "\n".join(lines)
+    return atomic_write(path, lambda tmp: Path(tmp).write_text(text, encoding="utf-8"))
+
+
+def write_markers_csv(points, normals, areas, path) -> Path:
+    """Write surface markers as CSV: x, y, z (m), nx, ny, nz (unit, outward), area (m²)."""
+    p = np.asarray(points, float)
+    n = np.asarray(normals, float)
+    a = np.asarray(areas, float).reshape(-1, 1)
+    if p.shape != n.shape or p.shape[0] != a.shape[0]:
+        raise InputError(f"markers need matching shapes, got points {p.shape}, normals {n.shape}, areas {a.shape}")
+    table = np.hstack([p, n, a])
+
+    def _w(tmp):
+        np.savetxt(tmp, table, delimiter=",", header="x_m,y_m,z_m,nx,ny,nz,area_m2", comments="", fmt="%.9g")
+
+    return atomic_write(path, _w)
+

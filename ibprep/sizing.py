@@ -1,0 +1,244 @@
+"""Swept envelope of a moving body, the resolution it needs, and refinement boxes to hold it.
+
+The envelope is the union, over one cycle, of the body's world bounding boxes,
+sampled densely enough that no point of the body moves more than a fraction of
+a cell between samples. The refinement boxes proposed for it are nested: the
+finest wraps the envelope with margins ahead, around and behind (the near wake);
+each coarser level wraps the next finer with a buffer of its own cells.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from .errors import InputError
+from .grid import Grid, NestedGrid, refine
+from .triangles import as_triangles
+
+__all__ = [
+    "Envelope",
+    "ResolutionLengths",
+    "SizingResult",
+    "swept_envelope",
+    "resolution_lengths",
+    "required_spacing",
+    "propose_boxes",
+]
+
+# Samples are placed so that the fastest body point moves at most this many cells
+# between two of them; the envelope is then padded by the same length.
+_SAMPLE_TRAVEL_CELLS = 0.5
+# At least this many samples per period, whatever the speed.
+_MIN_SAMPLES = 64
+# Blasius: delta99 = 4.91 x / sqrt(Re_x) (Schlichting & Gersten, Boundary-Layer Theory,
+# flat-plate chapter [memory: high]; 4.9100 re-derived by shooting [computed], REFERENCES §4.1).
+BLASIUS_DELTA99 = 4.91
+
+
+@dataclass(frozen=True)
+class Envelope:
+    """World-frame bounding boxes of the body over one cycle.
+
+    Attributes
+    ----------
+    lower, upper : (3,) float — metres; union of all sampled boxes, padded by the
+        largest travel between samples.
+    times : (n,) float — seconds; sample instants over one period.
+    box_lower, box_upper : (n, 3) float — metres; the body's box at each sample.
+    max_speed : float — m/s; largest sampled speed of a body point (grid frame).
+    """
+
+    lower: np.ndarray
+    upper: np.ndarray
+    times: np.ndarray
+    box_lower: np.ndarray
+    box_upper: np.ndarray
+    max_speed: float
+
+
+def _hull_points(vertices: np.ndarray) -> np.ndarray:
+    """Vertices of the convex hull (the extreme points of every rigid pose of the body)."""
+    from scipy.spatial import ConvexHull, QhullError
+
+    try:
+        return vertices[ConvexHull(vertices).vertices]
+    except (QhullError, ValueError):
+        return vertices
+
+
+def swept_envelope(surface, motion, spacing: float) -> Envelope:
+    """Bounding boxes of a rigidly moving body over one period.
+
+    Parameters
+    ----------
+    surface : trimesh.Trimesh or (vertices, faces) — the body in its body frame, metres.
+    motion : Motion — prescribed motion (``pose``, ``velocity``, ``period``).
+    spacing : float — metres; the finest cell size that matters: samples are close
+        enough that no point moves more than half of it between two of them.
+
+    Returns
+    -------
+    Envelope
+    """
+    if not (isinstance(spacing, (int, float)) and math.isfinite(spacing) and spacing > 0):
+        raise InputError(f"spacing must be a positive length in metres, got {spacing!r}")
+    v, _ = as_triangles(surface)
+    hull = _hull_points(v)
+    period = motion.period
+    probe = np.linspace(0.0, period, 257)[:-1]
+    speed = float(np.linalg.norm(motion.velocity(hull, probe), axis=-1).max())
+    # The sampled maximum can miss the true one slightly; 10 % headroom.
+    n = max(_MIN_SAMPLES, int(math.ceil(1.1 * speed * period / (_SAMPLE_TRAVEL_CELLS * spacing))))
+    times = np.linspace(0.0, period, n, endpoint=False)
+    lo = np.empty((n, 3))
+    hi = np.empty((n, 3))
+    block = max(1, 2_000_000 // max(1, len(hull)))
+    for s in range(0, n, block):
+        pts = motion.transform(hull, times[s : s + block])
+        lo[s : s + block] = pts.min(axis=1)
+        hi[s : s + block] = pts.max(axis=1)
+    pad = 1.1 * speed * period / n
+    return Envelope(lower=lo.min(axis=0) - pad, upper=hi.max(axis=0) + pad, times=times,
+                    box_lower=lo, box_upper=hi, max_speed=speed)
+
+
+@dataclass(frozen=True)
+class ResolutionLengths:
+    """The lengths a grid must resolve near the body, metres.
+
+    Attributes
+    ----------
+    chord : float — reference chord ``c``.
+    le_radius : float or None — leading-edge radius (NACA sections: 1.1019 t² c), None for a surface file.
+    bl_thickness : float — Blasius ``delta99 = 4.91 c / sqrt(Re_c)`` at the trailing edge.
+    stokes_layer : float — ``delta_s = sqrt(2 nu / omega)`` of the oscillation.
+    reynolds : float — ``U c / nu``.
+    """
+
+    chord: float
+    le_radius: float | None
+    bl_thickness: float
+    stokes_layer: float
+    reynolds: float
+
+
+def resolution_lengths(chord: float, speed: float, viscosity: float, frequency: float,
+                       le_radius: float | None = None) -> ResolutionLengths:
+    """Lengths to resolve: chord, leading-edge radius, Blasius thickness at the TE, Stokes layer.
+
+    Parameters
+    ----------
+    chord : float — metres. speed : float — m/s, free stream. viscosity : float — m²/s,
+    kinematic. frequency : float — Hz. le_radius : float, optional — metres.
+
+    Notes
+    -----
+    Blasius flat plate at x = c: ``delta99 = 4.91 c / sqrt(Re_c)`` (Schlichting & Gersten,
+    *Boundary-Layer Theory*, flat-plate chapter). Stokes' second problem: the
+    oscillating layer decays as ``exp(-y / delta_s)``, ``delta_s = sqrt(2 nu / omega)``.
+    """
+    re = speed * chord / viscosity
+    return ResolutionLengths(
+        chord=chord,
+        le_radius=le_radius,
+        bl_thickness=BLASIUS_DELTA99 * chord / math.sqrt(re),
+        stokes_layer=math.sqrt(2.0 * viscosity / (2.0 * math.pi * frequency)),
+        reynolds=re,
+    )
+
+
+def required_spacing(lengths: ResolutionLengths, limits) -> tuple[float, str, dict[str, float]]:
+    """The largest finest spacing that meets every resolution warning limit.
+
+    Parameters
+    ----------
+    lengths : ResolutionLengths
+    limits : CheckLimits-like — ``cells_per_chord_warn``, ``bl_cells_warn``,
+        ``stokes_cells_warn``, ``le_radius_cells_warn``.
+
+    Returns
+    -------
+    spacing : float — metres.
+    rule : str — the rule that sets it.
+    per_rule : dict — the spacing each rule alone asks for, metres.
+    """
+    per_rule = {
+        "cells per chord": lengths.chord / limits.cells_per_chord_warn,
+        "boundary layer": lengths.bl_thickness / limits.bl_cells_warn,
+        "Stokes layer": lengths.stokes_layer / limits.stokes_cells_warn,
+    }
+    if lengths.le_radius is not None:
+        per_rule["leading-edge radius"] = lengths.le_radius / limits.le_radius_cells_warn
+    rule = min(per_rule, key=per_rule.get)
+    return per_rule[rule], rule, per_rule
+
+
+@dataclass(frozen=True)
+class SizingResult:
+    """Refinement boxes proposed for a case (see :func:`propose_boxes`).
+
+    Attributes
+    ----------
+    envelope : Envelope
+    target_spacing : float — metres; what the resolution rules ask for.
+    rule : str — the rule that sets it.
+    grid : NestedGrid — the base grid with the proposed boxes (snapped).
+    boxes : tuple of ((3,), (3,)) — lower/upper of each proposed box, metres, coarsest first.
+    clipped : tuple of bool — whether each box had to be cut back to the domain.
+    """
+
+    envelope: Envelope
+    target_spacing: float
+    rule: str
+    grid: NestedGrid
+    boxes: tuple
+    clipped: tuple
+
+
+def propose_boxes(base: Grid, envelope: Envelope, chord: float, target_spacing: float, *,
+                  upstream: float = 0.25, lateral: float = 0.25, wake: float = 1.0,
+                  buffer_cells: int = 8, rule: str = "") -> SizingResult:
+    """Nested refinement boxes that reach ``target_spacing`` around the swept envelope.
+
+    Parameters
+    ----------
+    base : Grid — the domain and its base spacing (3-D).
+    envelope : Envelope — from :func:`swept_envelope`.
+    chord : float — metres; margins are in chords.
+    target_spacing : float — metres; the finest spacing must not exceed it.
+    upstream, lateral, wake : float — chords; margins of the finest box ahead of,
+        around (y and z) and behind the envelope.
+    buffer_cells : int — cells of each coarser level around the next finer box.
+
+    Returns
+    -------
+    SizingResult
+    """
+    if base.ndim != 3:
+        raise InputError("refinement boxes are proposed for 3-D grids")
+    levels = max(0, int(math.ceil(math.log2(base.spacing / target_spacing) - 1e-9)))
+    lo_dom, hi_dom = np.asarray(base.lower), np.asarray(base.upper)
+    finest_lo = envelope.lower - chord * np.array([upstream, lateral, lateral])
+    finest_hi = envelope.upper + chord * np.array([wake, lateral, lateral])
+    boxes = []
+    lo, hi = finest_lo, finest_hi
+    for lvl in range(levels, 0, -1):
+        h_lvl = base.spacing / 2**lvl
+        if lvl < levels:
+            lo = lo - buffer_cells * h_lvl
+            hi = hi + buffer_cells * h_lvl
+        boxes.append((lo.copy(), hi.copy()))
+    boxes.reverse()  # coarsest first
+    clipped = []
+    out = []
+    for lo, hi in boxes:
+        c_lo, c_hi = np.maximum(lo, lo_dom), np.minimum(hi, hi_dom)
+        clipped.append(bool(np.any(c_lo != lo) or np.any(c_hi != hi)))
+        out.append((tuple(float(x) for x in c_lo), tuple(float(x) for x in c_hi)))
+    nested = refine(base, out)
+    snapped = tuple((g.lower, g.upper) for g in nested.levels[1:])
+    return SizingResult(envelope=envelope, target_spacing=target_spacing, rule=rule, grid=nested,
+                        boxes=snapped, clipped=tuple(clipped))

@@ -1,0 +1,288 @@
+"""Classify and build stencils over many time steps of a moving body.
+
+Each checked instant ``t`` is a pair of consecutive solver steps: the tags at
+``t`` and at ``t + dt`` give the real fresh cells (solid at ``t``, not solid at
+``t + dt``) and covered cells, and the stencils at ``t + dt`` are built for
+every interface cell and every fresh cell. Work is split into chunks of
+consecutive instants; each chunk keeps its own incremental tagging state, so
+the result does not depend on how the instants are split or who runs them.
+
+Engines: ``"serial"`` (the default), local processes (``workers=N``), or a
+Dask distributed cluster (``scheduler=ADDRESS``). Whatever runs them, the
+per-step results are identical and come back in time order.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .classify import CellTag, classify, step_tags
+from .errors import IbprepError, InputError
+from .grid import Grid
+from .stencils import StencilLimits, build_stencils
+from .triangles import as_triangles, transform_points
+
+__all__ = ["StepResult", "SweepTask", "run_chunk", "sweep", "chunk_instants"]
+
+# How many failed-stencil locations each step keeps for the report.
+_KEEP_BAD = 20
+
+
+@dataclass(frozen=True)
+class StepResult:
+    """Figures of one checked step pair (t, t + dt); the step checked is t + dt.
+
+    Attributes
+    ----------
+    index : int — position of the instant in the sweep.
+    time : float — seconds; ``t + dt``.
+    n_solid, n_interface, n_fresh, n_covered : int — cell counts at ``t + dt``.
+    n_stencils : int — stencils built (interface cells and fresh cells).
+    n_bad : int — stencils not ok. n_fresh_bad : int — fresh cells among them.
+    worst_condition, worst_weight_bound, min_weight : float — over this step's stencils.
+    worst_condition_at, worst_weight_bound_at : (3,) float tuple — cell centres, metres.
+    bad_points : tuple of (3,) float tuples — up to 20 failed-stencil centres, metres.
+    body_outside : bool — no cell centre was solid (body off the grid).
+    """
+
+    index: int
+    time: float
+    n_solid: int
+    n_interface: int
+    n_fresh: int
+    n_covered: int
+    n_stencils: int
+    n_bad: int
+    n_fresh_bad: int
+    worst_condition: float
+    worst_condition_at: tuple
+    worst_weight_bound: float
+    worst_weight_bound_at: tuple
+    min_weight: float
+    bad_points: tuple
+    body_outside: bool
+
+
+@dataclass(frozen=True)
+class SweepTask:
+    """Everything a worker needs for a chunk of instants (plain, picklable data).
+
+    vertices : (n, 3) float — body frame, metres. faces : (m, 3) int.
+    motion : Motion. grid : Grid — the level the body sits in. dt : float — seconds.
+    instants : (k,) float — the ``t`` of each pair, seconds, increasing.
+    first_index : int — index of the first instant in the whole sweep.
+    bc, interface : str — stencil options. limits : StencilLimits.
+    """
+
+    vertices: np.ndarray
+    faces: np.ndarray
+    motion: object
+    grid: Grid
+    dt: float
+    instants: np.ndarray
+    first_index: int = 0
+    bc: str = "dirichlet"
+    interface: str = "fluid-side"
+    limits: StencilLimits = field(default_factory=StencilLimits)
+
+
+def _centre(grid: Grid, flat: int) -> tuple:
+    idx = grid.unflat_index(np.array([flat]))[0]
+    c = grid.centre_of(idx[None, :])[0]
+    return tuple(float(v) for v in c)
+
+
+def _step_figures(index: int, time: float, grid: Grid, tr, stencils, fresh_mask_cells) -> StepResult:
+    tags = tr.tags
+    n_solid = int(np.count_nonzero(tags == CellTag.SOLID))
+    n_interface = int(np.count_nonzero(tags == CellTag.INTERFACE))
+    n = len(stencils.cells)
+    bad = ~stencils.ok
+    if n:
+        ic = int(np.argmax(stencils.condition))
+        iw = int(np.argmax(stencils.weight_bound))
+        worst_c, worst_c_at = float(stencils.condition[ic]), _centre(grid, int(stencils.cells[ic]))
+        worst_w, worst_w_at = float(stencils.weight_bound[iw]), _centre(grid, int(stencils.cells[iw]))
+        min_w = float(stencils.min_weight.min())
+    else:
+        worst_c = worst_w = min_w = float("nan")
+        worst_c_at = worst_w_at = ()
+    bad_cells = stencils.cells[bad]
+    pts = grid.centre_of(grid.unflat_index(bad_cells[:_KEEP_BAD])) if bad_cells.size else np.empty((0, grid.ndim))
+    return StepResult(
+        index=index, time=float(time), n_solid=n_solid, n_interface=n_interface,
+        n_fresh=int(tr.fresh.size), n_covered=int(tr.covered.size), n_stencils=n,
+        n_bad=int(np.count_nonzero(bad)), n_fresh_bad=int(np.count_nonzero(bad & fresh_mask_cells)),
+        worst_condition=worst_c, worst_condition_at=worst_c_at, worst_weight_bound=worst_w,
+        worst_weight_bound_at=worst_w_at, min_weight=min_w,
+        bad_points=tuple(tuple(float(v) for v in p) for p in pts), body_outside=bool(tr.body_outside),
+    )
+
+
+def _world(task: SweepTask, t: float):
+    return transform_points(task.motion.pose(t), task.vertices), task.faces
+
+
+def run_chunk(task: SweepTask) -> list[StepResult]:
+    """Check every instant of a chunk in order, keeping the incremental tagging state.
+
+    Parameters
+    ----------
+    task : SweepTask
+
+    Returns
+    -------
+    list of StepResult, one per instant, in order.
+    """
+    import warnings
+
+    from .errors import IbprepWarning
+
+    grid = task.grid
+    out = []
+    previous = None
+    prev_surface = None
+    with warnings.catch_warnings():
+        # An empty grid level is reported through StepResult.body_outside.
+        warnings.simplefilter("ignore", IbprepWarning)
+        for k, t in enumerate(np.asarray(task.instants, dtype=float)):
+            s0 = _world(task, t)
+            if previous is None:
+                state = classify(s0, grid, interface=task.interface)
+            else:
+                state = step_tags(previous, s0, grid, previous_surface=prev_surface, interface=task.interface)
+            s1 = _world(task, t + task.dt)
+            tr = step_tags(state, s1, grid, previous_surface=s0, interface=task.interface)
+            tags = tr.tags
+            if tr.fresh.size:
+                tags = tags.copy()
+                flat = tags.reshape(-1)
+                flat[tr.fresh] = CellTag.INTERFACE if task.interface == "fluid-side" else flat[tr.fresh]
+            stencils = build_stencils(tags, grid, s1, bc=task.bc, interface=task.interface, limits=task.limits)
+            fresh_mask = np.isin(stencils.cells, tr.fresh)
+            out.append(_step_figures(task.first_index + k, t + task.dt, grid, tr, stencils, fresh_mask))
+            previous, prev_surface = tr, s1
+    return out
+
+
+def chunk_instants(instants, n_chunks: int) -> list[tuple[int, np.ndarray]]:
+    """Split increasing instants into ``n_chunks`` runs of consecutive ones: (first index, times)."""
+    instants = np.asarray(instants, dtype=float)
+    n_chunks = max(1, min(int(n_chunks), len(instants)))
+    bounds = np.linspace(0, len(instants), n_chunks + 1).round().astype(int)
+    return [(int(a), instants[a:b]) for a, b in zip(bounds[:-1], bounds[1:]) if b > a]
+
+
+def sweep(surface, motion, grid: Grid, instants, dt: float, *, bc: str = "dirichlet",
+          interface: str = "fluid-side", limits: StencilLimits | None = None, workers: int = 1,
+          scheduler: str | None = None, chunks: int | None = None, progress=None) -> list[StepResult]:
+    """Check step pairs (t, t + dt) at the given instants; serial, local processes or Dask.
+
+    Parameters
+    ----------
+    surface : closed surface — body frame, metres.
+    motion : Motion.
+    grid : Grid — the level the body sits in.
+    instants : (k,) float — seconds, increasing.
+    dt : float — seconds, the solver step.
+    bc, interface : str — stencil options (see :func:`~ibprep.build_stencils`).
+    limits : StencilLimits, optional.
+    workers : int — local processes (1 = serial, in this process).
+    scheduler : str, optional — address of a Dask distributed scheduler
+        (``tcp://host:8786``); needs ``pip install "ibprep[dask]"``.
+    chunks : int, optional — number of chunks (default: the number of workers, or
+        two per Dask worker).
+    progress : callable, optional — called with (done, total) instants as chunks finish.
+
+    Returns
+    -------
+    list of StepResult in instant order.
+
+    Raises
+    ------
+    InputError
+        Bad options, or Dask asked for but not installed.
+    IbprepError
+        A worker failed; the message names the first instant of its chunk.
+    """
+    v, f = as_triangles(surface)
+    instants = np.asarray(instants, dtype=float)
+    if instants.ndim != 1 or instants.size == 0:
+        raise InputError("instants must be a non-empty 1-D array of times in seconds")
+    if not (math.isfinite(dt) and dt > 0):
+        raise InputError(f"the time step must be a positive number of seconds, got {dt!r}")
+    if not isinstance(workers, int) or workers < 1:
+        raise InputError(f"workers must be a whole number >= 1, got {workers!r}")
+    limits = limits if limits is not None else StencilLimits()
+    n_chunks = chunks or (workers if scheduler is None else 2 * max(1, workers))
+    parts = chunk_instants(instants, n_chunks)
+    tasks = [SweepTask(v, f, motion, grid, float(dt), times, first, bc, interface, limits) for first, times in parts]
+    total = len(instants)
+    results: list[StepResult] = []
+
+    def _done(res):
+        results.extend(res)
+        if progress is not None:
+            progress(len(results), total)
+
+    if scheduler is not None:
+        _run_dask(tasks, scheduler, _done)
+    elif workers == 1:
+        for task in tasks:
+            _done(run_chunk(task))
+    else:
+        _run_processes(tasks, workers, _done)
+    results.sort(key=lambda r: r.index)
+    return results
+
+
+def _failure(task: SweepTask, exc: BaseException) -> IbprepError:
+    return IbprepError(
+        f"a sweep worker failed on the chunk starting at t = {task.instants[0]:.6g} s "
+        f"(instant {task.first_index}): {type(exc).__name__}: {exc}"
+    )
+
+
+def _run_processes(tasks, workers: int, done) -> None:
+    import concurrent.futures as cf
+    import multiprocessing as mp
+
+    ctx = mp.get_context("spawn")
+    with cf.ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as pool:
+        futures = {pool.submit(run_chunk, t): t for t in tasks}
+        for fut in cf.as_completed(futures):
+            try:
+                done(fut.result())
+            except IbprepError:
+                raise
+            except Exception as exc:  # a worker died or raised: never a pass
+                for other in futures:
+                    other.cancel()
+                raise _failure(futures[fut], exc) from exc
+
+
+def _run_dask(tasks, scheduler: str, done) -> None:
+    try:
+        from distributed import Client, as_completed
+    except ImportError:
+        raise InputError(
+            'a Dask scheduler was given but dask.distributed is not installed; pip install "ibprep[dask]"'
+        ) from None
+    try:
+        client = Client(scheduler, timeout="20s")
+    except (OSError, TimeoutError) as exc:
+        raise InputError(f"cannot reach the Dask scheduler at {scheduler!r}: {exc}") from None
+    try:
+        futures = client.map(run_chunk, tasks, pure=False)
+        owner = {f.key: t for f, t in zip(futures, tasks)}
+        for fut in as_completed(futures):
+            try:
+                done(fut.result())
+            except Exception as exc:
+                client.cancel(futures)
+                raise _failure(owner[fut.key], exc) from exc
+    finally:
+        client.close()
