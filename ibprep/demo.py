@@ -43,16 +43,16 @@ upper = [0.42, 0.15, 0.21]      # m
 spacing = 0.005                 # m, base cells (c/12)
 # Three nested boxes, each halving the spacing: finest 0.625 mm (c/96).
 [[grid.refine]]
-lower = [-0.045, -0.135, -0.03]
-upper = [0.205, 0.135, 0.21]
+lower = [-0.05, -0.125, -0.03]
+upper = [0.155, 0.125, 0.21]
 [[grid.refine]]
-lower = [-0.03, -0.12, -0.02]
-upper = [0.19, 0.12, 0.2]
+lower = [-0.0275, -0.1025, -0.0275]
+upper = [0.1325, 0.1025, 0.2075]
 [[grid.refine]]
-lower = [-0.02, -0.11, -0.0125]
-upper = [0.175, 0.11, 0.1925]
+lower = [-0.01625, -0.09125, -0.01625]
+upper = [0.12125, 0.09125, 0.19625]
 
 [time]
-step = 0.002              # s  (2000 steps per cycle)
+step = 0.001              # s  (4000 steps per cycle)
 cycles = 10
 """

@@ -182,8 +182,12 @@ def _surface_checks(case: Case, h_body: float, figures: dict) -> list[Check]:
     if not rep.closed:
         return out
     thin = thin_regions(mesh, 2.0 * h_body, spacing=h_body)
-    frac = float(thin.area_fraction)
-    where = f"; thinnest {thin.min_thickness / h_body:.2g} cells near {_fmt_point(thin.thinnest_point)}" if thin.count else ""
+    frac = float(thin.area / rep.area) if rep.area > 0 else 0.0
+    where = ""
+    if thin.count:
+        k = int(np.argmin(thin.thickness))
+        where = f"; thinnest {thin.min_thickness / h_body:.2g} cells near {_fmt_point(thin.points[k])}"
+        figures["surface"]["thin_area_fraction"] = frac
     msg = f"{100 * frac:.2g} % of the surface is thinner than two cells ({2 * h_body:.3g} m){where}"
     if frac > case.checks.thin_fraction_max:
         out.append(Check("surface.thin", "fail", frac, case.checks.thin_fraction_max, "area fraction", msg,

@@ -69,7 +69,7 @@ def _with(old, new):
         (_with("pitch_amplitude_deg = 70", "pitch_amplitude_deg = 90"), r"pitch_amplitude_deg must be below 90"),
         (_with('section = "0015"', 'section = "0015"\nsurface = "x.stl"'), r"exactly one of section"),
         (_with('section = "0015"', 'surface = "missing.stl"'), r"surface: file .*missing.stl.* not found"),
-        (_with("[time]", "[timing]"), r"unknown table \[timing\]; did you mean 'time'"),
+        (_with("[time]", "[tme]"), r"unknown table \[tme\]; did you mean 'time'"),
         (_with("pivot = [0.02, 0.0, 0.0]", "pivot = [0.02, 0.0]\npivot2 = 1"), r"unknown key 'pivot2'"),
         (_with("pivot = [0.02, 0.0, 0.0]", 'pivot = ["a", 0, 0]'), r"\[motion\] pivot must be \[x, y, z\]"),
         (GOOD.replace("viscosity = 6e-6", ""), r"\[flow\] viscosity is missing"),

@@ -1,0 +1,70 @@
+"""Shared test fixtures: small cases that run in seconds."""
+
+import pytest
+
+#: A small wing case on a coarse grid, with resolution limits relaxed so that it passes;
+#: variants of it must fail in the right check family. Invented numbers.
+SMALL_CASE = """
+[case]
+title = "small test wing (invented)"
+
+[body]
+section = "0012"
+chord = 0.06
+span = 0.12
+tips = "flat"
+faces = 2000
+
+[motion]
+frequency = 0.25
+plunge_amplitude = 0.03
+pitch_amplitude_deg = 30
+phase_deg = 90
+pivot = [0.02, 0.0, 0.0]
+
+[flow]
+speed = 0.1
+viscosity = 6e-6
+
+[grid]
+lower = [-0.12, -0.12, -0.06]
+upper = [0.36, 0.12, 0.18]
+spacing = 0.006
+[[grid.refine]]
+lower = [-0.03, -0.06, -0.015]
+upper = [0.15, 0.06, 0.135]
+
+[time]
+step = 0.002
+cycles = 1
+
+[checks]
+phases = 4
+cells_per_chord_warn = 15
+cells_per_chord_min = 10
+le_radius_cells_warn = 0.1
+le_radius_cells_min = 0.05
+bl_cells_warn = 2
+bl_cells_min = 1
+stokes_cells_warn = 0.5
+stokes_cells_min = 0.2
+upstream_chords = 1
+downstream_chords = 1
+lateral_chords = 0.5
+spanwise_chords = 0.5
+thin_fraction_max = 0.95
+"""
+
+
+@pytest.fixture
+def small_case_text():
+    """The text of :data:`SMALL_CASE`."""
+    return SMALL_CASE
+
+
+@pytest.fixture
+def small_case_file(tmp_path):
+    """:data:`SMALL_CASE` written to a file in a temporary folder."""
+    p = tmp_path / "case.toml"
+    p.write_text(SMALL_CASE)
+    return p

@@ -1,0 +1,126 @@
+"""The command line, in process (main([...])) and once as a subprocess."""
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from conftest import SMALL_CASE
+from ibprep.cli import main
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def _case(tmp_path, text=SMALL_CASE, name="case.toml"):
+    p = tmp_path / name
+    p.write_text(text)
+    return p
+
+
+def test_check_passes_and_writes_json_and_plots(tmp_path, capsys):
+    case = _case(tmp_path)
+    out = tmp_path / "report.json"
+    rc = main(["check", str(case), "--json", str(out), "--plots", str(tmp_path / "plots"), "--no-progress"])
+    text = capsys.readouterr().out
+    assert rc == 0, text
+    assert "verdict: WARN" in text or "verdict: PASS" in text
+    assert "does not validate a simulation" in text
+    d = json.loads(out.read_text())
+    assert d["verdict"] in ("pass", "warn")
+    for png in ("motion.png", "steps.png", "tags.png"):
+        data = (tmp_path / "plots" / png).read_bytes()
+        assert data[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_failing_case_exits_1(tmp_path, capsys):
+    case = _case(tmp_path, SMALL_CASE.replace("step = 0.002", "step = 0.2"))
+    assert main(["check", str(case), "--no-progress"]) == 1
+    out = capsys.readouterr().out
+    assert "FAIL  time.cfl" in out and "verdict: FAIL" in out
+
+
+@pytest.mark.parametrize(
+    "edit, pattern",
+    [
+        (("frequency = 0.25", "frequncy = 0.25"), r"unknown key 'frequncy'; did you mean 'frequency'"),
+        (("spacing = 0.006", "spacing = -0.006"), r"\[grid\] spacing must be > 0"),
+        (("speed = 0.1", "speed = nan"), r"\[flow\] speed must be finite"),
+        (('section = "0012"', 'surface = "missing.stl"'), r"surface: file .*missing.stl.* not found"),
+    ],
+)
+def test_bad_input_exits_2_with_one_line_and_keeps_existing_json(tmp_path, capsys, edit, pattern):
+    import re
+
+    case = _case(tmp_path, SMALL_CASE.replace(*edit))
+    existing = tmp_path / "old.json"
+    existing.write_text('{"keep": true}')
+    rc = main(["check", str(case), "--json", str(existing)])
+    err = capsys.readouterr().err
+    assert rc == 2
+    assert err.count("\n") == 1 and "Traceback" not in err
+    assert re.search(pattern, err), err
+    assert existing.read_text() == '{"keep": true}'
+
+
+def test_open_stl_exits_2(tmp_path, capsys):
+    # A single triangle: an open surface.
+    stl = tmp_path / "open.stl"
+    stl.write_text("solid t\nfacet normal 0 0 1\nouter loop\nvertex 0 0 0\nvertex 1 0 0\nvertex 0 1 0\n"
+                   "endloop\nendfacet\nendsolid t\n")
+    case = _case(tmp_path, SMALL_CASE.replace('section = "0012"', 'surface = "open.stl"'))
+    assert main(["check", str(case)]) == 2
+    err = capsys.readouterr().err
+    assert "open" in err and "Traceback" not in err
+
+
+def test_usage_errors_exit_2(capsys):
+    assert main(["check"]) == 2
+    assert main(["frobnicate"]) == 2
+    assert main([]) == 2
+    err = capsys.readouterr().err
+    assert "Traceback" not in err
+
+
+def test_size_prints_a_pasteable_block(tmp_path, capsys):
+    case = _case(tmp_path)
+    assert main(["size", str(case)]) == 0
+    out = capsys.readouterr().out
+    assert "[[grid.refine]]" in out and "finest spacing" in out
+    block = out[out.index("[[grid.refine]]"):]
+    # The pasted block is valid TOML for the case file.
+    import tomllib
+
+    boxes = tomllib.loads(block)["grid"]["refine"]
+    assert len(boxes) >= 1 and all(len(b["lower"]) == 3 for b in boxes)
+
+
+def test_export_writes_files_that_read_back(tmp_path, capsys):
+    import meshio
+    import numpy as np
+
+    from ibprep import load_stencils, load_surface
+
+    case = _case(tmp_path)
+    out = tmp_path / "exp"
+    assert main(["export", str(case), "--out", str(out), "--count", "2"]) == 0
+    body = load_surface(out / "body_step0000.stl")
+    assert body.is_watertight
+    m = meshio.read(out / "tags_step0001.vtu")
+    assert set(np.unique(m.cell_data["tag"][0])) <= {1, 2}
+    st = load_stencils(out / "stencils_step0000.npz")
+    assert len(st.cells) > 0
+    markers = np.loadtxt(out / "markers_body_frame.csv", delimiter=",", skiprows=1)
+    assert markers.shape[1] == 7
+    assert "step0001" in (out / "tags.pvd").read_text()
+
+
+def test_subprocess_smoke(tmp_path):
+    case = _case(tmp_path, SMALL_CASE.replace("frequency = 0.25", "frequency = -1"))
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    r = subprocess.run([sys.executable, "-m", "ibprep", "check", str(case)], capture_output=True, text=True,
+                       env=env, timeout=120)
+    assert r.returncode == 2
+    assert "[motion] frequency must be > 0" in r.stderr and "Traceback" not in r.stderr

@@ -1,0 +1,77 @@
+"""The pre-flight gate: verdicts, and each family failing on the case that should fail it."""
+
+import json
+
+import pytest
+
+from conftest import SMALL_CASE
+from ibprep import parse_case, preflight
+
+
+@pytest.fixture(scope="module")
+def small_report():
+    return preflight(parse_case(SMALL_CASE))
+
+
+def _by_id(report):
+    return {c.id: c for c in report.checks}
+
+
+def test_small_case_passes_with_every_family_present(small_report):
+    checks = _by_id(small_report)
+    assert small_report.verdict in ("pass", "warn"), [c for c in small_report.checks if c.status == "fail"]
+    families = {c.id.split(".")[0] for c in small_report.checks}
+    assert families == {"surface", "domain", "resolution", "refine", "time", "stencil"}
+    assert checks["stencil.ok"].status == "pass"
+    assert checks["surface.closed"].status == "pass"
+    # A sharp trailing edge is always thinner than two cells: said, not failed.
+    assert checks["surface.thin"].status == "warn"
+    st = small_report.figures["stencils"]
+    assert st["checked_steps"] >= 4 and st["stencils_built"] > 0
+    assert st["max_fresh_cells"] > 0  # consecutive step pairs expose real fresh cells
+
+
+def test_report_json_has_the_contract_shape(small_report):
+    d = json.loads(small_report.to_json())
+    assert set(d) >= {"verdict", "checks", "figures", "caution"}
+    for c in d["checks"]:
+        assert set(c) == {"id", "status", "value", "limit", "unit", "message", "hint"}
+        assert c["status"] in ("pass", "warn", "fail")
+    assert "does not validate a simulation" in d["caution"]
+    assert d["figures"]["numbers"]["reynolds"] == pytest.approx(1000)
+
+
+def _variant(old, new):
+    assert old in SMALL_CASE, old
+    return parse_case(SMALL_CASE.replace(old, new))
+
+
+def test_time_step_far_too_large_fails_time_family():
+    rep = preflight(_variant("step = 0.002", "step = 0.2"))
+    checks = _by_id(rep)
+    assert rep.verdict == "fail"
+    assert checks["time.cfl"].status == "fail" and checks["time.travel"].status == "fail"
+    assert "reduce the time step" in checks["time.travel"].hint
+
+
+def test_grid_too_coarse_fails_resolution():
+    rep = preflight(_variant("cells_per_chord_min = 10", "cells_per_chord_min = 40"))
+    checks = _by_id(rep)
+    assert checks["resolution.chord"].status == "fail"
+    assert checks["resolution.chord"].value == pytest.approx(20.0)  # c / h = 0.06 / 0.003
+    assert rep.verdict == "fail"
+
+
+def test_refinement_box_missing_the_body_fails_refine():
+    rep = preflight(_variant("lower = [-0.03, -0.06, -0.015]", "lower = [0.03, -0.06, -0.015]"))
+    checks = _by_id(rep)
+    assert checks["refine.envelope"].status == "fail"
+    assert rep.verdict == "fail"
+
+
+def test_domain_the_plunging_body_leaves_fails_domain():
+    rep = preflight(_variant("plunge_amplitude = 0.03", "plunge_amplitude = 0.115"))
+    checks = _by_id(rep)
+    assert checks["domain.inside"].status == "fail"
+    assert "face" in checks["domain.inside"].message
+    assert rep.verdict == "fail"
