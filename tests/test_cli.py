@@ -8,7 +8,7 @@ from pathlib import Path
 
 import pytest
 
-from conftest import SMALL_CASE
+from cases import SMALL_CASE
 from ibprep.cli import main
 
 ROOT = Path(__file__).resolve().parents[1]

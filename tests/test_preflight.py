@@ -4,7 +4,7 @@ import json
 
 import pytest
 
-from conftest import SMALL_CASE
+from cases import SMALL_CASE
 from ibprep import parse_case, preflight
 
 

@@ -1,6 +1,4 @@
-"""Shared test fixtures: small cases that run in seconds."""
-
-import pytest
+"""Small cases that run the whole pre-flight in seconds (imported by the pre-flight and CLI tests)."""
 
 #: A small wing case on a coarse grid, with resolution limits relaxed so that it passes;
 #: variants of it must fail in the right check family. Invented numbers.
@@ -54,17 +52,3 @@ lateral_chords = 0.5
 spanwise_chords = 0.5
 thin_fraction_max = 0.95
 """
-
-
-@pytest.fixture
-def small_case_text():
-    """The text of :data:`SMALL_CASE`."""
-    return SMALL_CASE
-
-
-@pytest.fixture
-def small_case_file(tmp_path):
-    """:data:`SMALL_CASE` written to a file in a temporary folder."""
-    p = tmp_path / "case.toml"
-    p.write_text(SMALL_CASE)
-    return p
