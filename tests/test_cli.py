@@ -89,7 +89,7 @@ def test_size_prints_a_pasteable_block(tmp_path, capsys):
     assert main(["size", str(case)]) == 0
     out = capsys.readouterr().out
     assert "[[grid.refine]]" in out and "finest spacing" in out
-    block = out[out.index("[[grid.refine]]"):]
+    block = out[out.index("\n[[grid.refine]]") + 1:]
     # The pasted block is valid TOML for the case file.
     import tomllib
 

@@ -55,10 +55,10 @@ def test_time_step_far_too_large_fails_time_family():
 
 
 def test_grid_too_coarse_fails_resolution():
-    rep = preflight(_variant("cells_per_chord_min = 10", "cells_per_chord_min = 40"))
+    rep = preflight(_variant("spacing = 0.006", "spacing = 0.024"))
     checks = _by_id(rep)
     assert checks["resolution.chord"].status == "fail"
-    assert checks["resolution.chord"].value == pytest.approx(20.0)  # c / h = 0.06 / 0.003
+    assert checks["resolution.chord"].value == pytest.approx(5.0)  # c / h = 0.06 / 0.012
     assert rep.verdict == "fail"
 
 
