@@ -105,8 +105,10 @@ def _check_add_args(p):
 
 
 def _engine_args(p):
-    p.add_argument("--workers", type=int, default=1, metavar="N", help="local processes for the step sweep")
-    p.add_argument("--scheduler", metavar="ADDRESS", help="Dask scheduler address, e.g. tcp://10.0.0.5:8786")
+    p.add_argument("--workers", type=int, default=1, metavar="N",
+                   help="processes for the step sweep (with --scheduler local: Dask workers)")
+    p.add_argument("--scheduler", metavar="ADDRESS",
+                   help="run the sweep on a Dask cluster: a scheduler address (tcp://host:8786) or 'local'")
     p.add_argument("--no-progress", action="store_true", help="no progress bar on stderr")
 
 

@@ -7,9 +7,17 @@ every interface cell and every fresh cell. Work is split into chunks of
 consecutive instants; each chunk keeps its own incremental tagging state, so
 the result does not depend on how the instants are split or who runs them.
 
-Engines: ``"serial"`` (the default), local processes (``workers=N``), or a
-Dask distributed cluster (``scheduler=ADDRESS``). Whatever runs them, the
-per-step results are identical and come back in time order.
+Engines: serial (the default), local processes (``workers=N``), or a Dask
+distributed cluster (``scheduler=ADDRESS``, or ``"local"`` for a local Dask
+cluster). Whatever runs them, the per-step results are identical and come
+back in time order.
+
+Memory per task: the body arrays, three ``uint8`` tag arrays of the grid level
+(previous, current and a copy with fresh cells marked: 3 bytes per cell), the
+transition's crossing lists (proportional to the surface, not the grid), and
+one step's stencil tables (about ``(8 + 16 k + 65)`` bytes per interface cell
+with ``k`` neighbours). Nothing grows with the number of steps: each step
+returns a few figures only.
 """
 
 from __future__ import annotations
@@ -192,7 +200,8 @@ def sweep(surface, motion, grid: Grid, instants, dt: float, *, bc: str = "dirich
     limits : StencilLimits, optional.
     workers : int — local processes (1 = serial, in this process).
     scheduler : str, optional — address of a Dask distributed scheduler
-        (``tcp://host:8786``); needs ``pip install "ibprep[dask]"``.
+        (``tcp://host:8786``), or ``"local"`` to start a local Dask cluster of
+        ``workers`` single-threaded processes; needs ``pip install "ibprep[dask]"``.
     chunks : int, optional — number of chunks (default: the number of workers, or
         two per Dask worker).
     progress : callable, optional — called with (done, total) instants as chunks finish.
@@ -217,6 +226,8 @@ def sweep(surface, motion, grid: Grid, instants, dt: float, *, bc: str = "dirich
     if not isinstance(workers, int) or workers < 1:
         raise InputError(f"workers must be a whole number >= 1, got {workers!r}")
     limits = limits if limits is not None else StencilLimits()
+    if scheduler is not None and not isinstance(scheduler, str):
+        raise InputError(f"scheduler must be an address like tcp://host:8786 or 'local', got {scheduler!r}")
     n_chunks = chunks or (workers if scheduler is None else 2 * max(1, workers))
     parts = chunk_instants(instants, n_chunks)
     tasks = [SweepTask(v, f, motion, grid, float(dt), times, first, bc, interface, limits) for first, times in parts]
@@ -229,8 +240,8 @@ def sweep(surface, motion, grid: Grid, instants, dt: float, *, bc: str = "dirich
             progress(len(results), total)
 
     if scheduler is not None:
-        _run_dask(tasks, scheduler, _done)
-    elif workers == 1:
+        _run_dask(tasks, scheduler, workers, _done)
+    elif workers == 1 or len(tasks) == 1:
         for task in tasks:
             _done(run_chunk(task))
     else:
@@ -264,25 +275,36 @@ def _run_processes(tasks, workers: int, done) -> None:
                 raise _failure(futures[fut], exc) from exc
 
 
-def _run_dask(tasks, scheduler: str, done) -> None:
+def _run_dask(tasks, scheduler: str, workers: int, done) -> None:
     try:
-        from distributed import Client, as_completed
+        from distributed import Client, LocalCluster, as_completed
     except ImportError:
         raise InputError(
-            'a Dask scheduler was given but dask.distributed is not installed; pip install "ibprep[dask]"'
+            'a Dask scheduler was asked for but dask.distributed is not installed; pip install "ibprep[dask]"'
         ) from None
+    cluster = None
     try:
-        client = Client(scheduler, timeout="20s")
+        if scheduler == "local":
+            cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
+                                   dashboard_address=None)
+            client = Client(cluster)
+        else:
+            client = Client(scheduler, timeout="20s")
     except (OSError, TimeoutError) as exc:
+        if cluster is not None:
+            cluster.close()
         raise InputError(f"cannot reach the Dask scheduler at {scheduler!r}: {exc}") from None
     try:
         futures = client.map(run_chunk, tasks, pure=False)
         owner = {f.key: t for f, t in zip(futures, tasks)}
         for fut in as_completed(futures):
             try:
-                done(fut.result())
-            except Exception as exc:
+                res = fut.result()
+            except Exception as exc:  # a task raised or its worker died: never a pass
                 client.cancel(futures)
                 raise _failure(owner[fut.key], exc) from exc
+            done(res)
     finally:
         client.close()
+        if cluster is not None:
+            cluster.close()

@@ -1,0 +1,100 @@
+"""Step sweeps: serial, local processes and Dask give the same report; failures never pass."""
+
+import json
+
+import numpy as np
+import pytest
+
+from cases import SMALL_CASE
+from ibprep import IbprepError, InputError, Motion, parse_case, preflight, sweep
+from ibprep.sweep import chunk_instants
+
+
+def _report_json(**kw):
+    rep = preflight(parse_case(SMALL_CASE), **kw)
+    return json.loads(rep.to_json()), rep
+
+
+@pytest.fixture(scope="module")
+def serial():
+    return _report_json()
+
+
+def test_chunks_are_consecutive_and_cover_everything():
+    t = np.arange(10) * 0.1
+    parts = chunk_instants(t, 3)
+    assert [first for first, _ in parts] == [0, 3, 7]
+    np.testing.assert_array_equal(np.concatenate([p for _, p in parts]), t)
+    assert len(chunk_instants(t, 50)) == 10
+
+
+def test_split_into_chunks_gives_identical_steps(serial):
+    # Each chunk restarts its incremental state with a full tagging: results must not change.
+    _, rep = serial
+    case = parse_case(SMALL_CASE)
+    from ibprep.preflight import check_instants
+
+    t = check_instants(case)
+    grid = case.grid.levels[rep.figures["resolution"]["level_at_body"]]
+    one = sweep(case.surface, case.motion, grid, t, case.time.step)
+    three = sweep(case.surface, case.motion, grid, t, case.time.step, chunks=3)
+    assert one == three
+    assert one == list(rep.steps)
+
+
+@pytest.mark.slow
+def test_processes_give_the_identical_report(serial):
+    d, _ = serial
+    d2, _ = _report_json(workers=2)
+    assert d2 == d
+
+
+@pytest.mark.slow
+def test_dask_local_cluster_gives_the_identical_report(serial):
+    pytest.importorskip("distributed")
+    d, _ = serial
+    d2, _ = _report_json(workers=2, scheduler="local")
+    assert d2 == d
+
+
+class _BrokenMotion(Motion):
+    """A motion whose pose fails after a given time: stands in for a worker that breaks mid-sweep."""
+
+    def pose(self, t):
+        if np.max(t) > 1.0:
+            raise RuntimeError("simulated worker failure")
+        return super().pose(t)
+
+
+def _broken_sweep(**kw):
+    case = parse_case(SMALL_CASE)
+    m = case.motion
+    broken = _BrokenMotion(frequency=m.frequency, plunge_amplitude=m.plunge_amplitude,
+                           pitch_amplitude=m.pitch_amplitude, phase=m.phase, pivot=m.pivot)
+    t = np.linspace(0, 2.0, 6)
+    return sweep(case.surface, broken, case.grid.finest, t, case.time.step, **kw)
+
+
+def test_a_failing_chunk_is_an_error_naming_the_step_serial():
+    with pytest.raises(RuntimeError, match="simulated worker failure"):
+        _broken_sweep()
+
+
+@pytest.mark.slow
+def test_a_failing_task_on_dask_is_an_error_not_a_pass():
+    pytest.importorskip("distributed")
+    from distributed import Client, LocalCluster
+
+    with LocalCluster(n_workers=1, processes=False, dashboard_address=None) as cluster:
+        with pytest.raises(IbprepError, match=r"sweep worker failed on the chunk starting at t = .* s"):
+            _broken_sweep(scheduler=cluster.scheduler_address, chunks=3)
+
+
+def test_bad_engine_options_are_input_errors():
+    case = parse_case(SMALL_CASE)
+    with pytest.raises(InputError, match="workers must be a whole number >= 1"):
+        sweep(case.surface, case.motion, case.grid.finest, [0.0], 0.002, workers=0)
+    with pytest.raises(InputError, match="non-empty 1-D array"):
+        sweep(case.surface, case.motion, case.grid.finest, [], 0.002)
+    with pytest.raises(InputError, match="positive number of seconds"):
+        sweep(case.surface, case.motion, case.grid.finest, [0.0], -1.0)
