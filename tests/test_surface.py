@@ -320,3 +320,29 @@ def test_thickness_bad_input():
         local_thickness(_box(), np.zeros((1, 3)), np.zeros((1, 3)))
     with pytest.raises(InputError, match="min_thickness must be a positive"):
         thin_regions(_box(), 0.0)
+
+
+def test_thickness_agrees_with_trimesh_ray_casting():
+    # Reference library: trimesh.ray.ray_triangle.RayMeshIntersector.intersects_location
+    # (multiple hits, nearest beyond the start), on a cambered wing with rounded ends.
+    from trimesh.ray.ray_triangle import RayMeshIntersector
+
+    wing = make_wing("4412", 1.0, 1.5, tips="round", n_chord=20, taper=0.6, sweep=0.3, twist=-0.2)
+    pts, nrm, _ = surface_markers(wing, 0.08)
+    ours = local_thickness(wing, pts, nrm)
+    loc, ray, _ = RayMeshIntersector(wing).intersects_location(pts, -nrm, multiple_hits=True)
+    dist = np.einsum("ij,ij->i", loc - pts[ray], -nrm[ray])
+    ref = np.full(len(pts), np.inf)
+    keep = dist > 1e-7 * np.linalg.norm(np.ptp(wing.vertices, axis=0))
+    np.minimum.at(ref, ray[keep], dist[keep])
+    assert np.all(np.isfinite(ours))
+    np.testing.assert_allclose(ours, ref, rtol=1e-9, atol=1e-12)
+
+
+def test_thickness_does_not_modify_inputs():
+    s = _sphere(1.0, subdivisions=1)
+    pts = s.vertices.copy()
+    nrm = pts.copy()
+    local_thickness(s, pts, nrm)
+    np.testing.assert_array_equal(pts, s.vertices)
+    np.testing.assert_array_equal(nrm, s.vertices)

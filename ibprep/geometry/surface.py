@@ -563,6 +563,116 @@ def surface_markers(mesh, spacing: float):
 
 
 # ---------------------------------------------------------------------- thickness
+class _VoxelIndex:
+    """Triangles binned into a uniform grid of cubes: a vectorised broad phase for rays.
+
+    Each triangle is listed in every cube its bounding box overlaps; the lists are
+    stored CSR-style (``start``, ``tri``) over flat cube keys.
+    """
+
+    # Cube side as a multiple of the median longest triangle edge.
+    _SIDE_PER_EDGE = 1.0
+    # Cap on (triangle, cube) pairs per triangle on average; the side grows past it.
+    _PAIRS_PER_TRIANGLE = 24
+
+    def __init__(self, tri: np.ndarray):
+        self.tri = tri
+        lo_t, hi_t = tri.min(axis=1), tri.max(axis=1)
+        self.lower = lo_t.min(axis=0)
+        upper = hi_t.max(axis=0)
+        span = np.maximum(upper - self.lower, 1e-300)
+        edges = np.linalg.norm(tri - np.roll(tri, 1, axis=1), axis=2).max(axis=1)
+        side = max(self._SIDE_PER_EDGE * float(np.median(edges)), float(span.max()) / 512)
+        while True:
+            dims = np.maximum(1, np.ceil(span / side).astype(np.int64))
+            a = np.clip(np.floor((lo_t - self.lower) / side).astype(np.int64), 0, dims - 1)
+            b = np.clip(np.floor((hi_t - self.lower) / side).astype(np.int64), 0, dims - 1)
+            ext = b - a + 1
+            counts = ext.prod(axis=1)
+            if counts.sum() <= self._PAIRS_PER_TRIANGLE * len(tri) or side >= span.max():
+                break
+            side *= 1.5
+        self.side, self.dims = side, dims
+        owner = np.repeat(np.arange(len(tri)), counts)
+        local = np.arange(owner.size) - np.repeat(np.cumsum(counts) - counts, counts)
+        e = ext[owner]
+        ix = a[owner, 0] + local // (e[:, 1] * e[:, 2])
+        iy = a[owner, 1] + (local // e[:, 2]) % e[:, 1]
+        iz = a[owner, 2] + local % e[:, 2]
+        key = (ix * dims[1] + iy) * dims[2] + iz
+        order = np.argsort(key, kind="stable")
+        self.tri_of = owner[order]
+        self.start = np.searchsorted(key[order], np.arange(int(dims.prod()) + 1))
+
+    def candidates(self, lo: np.ndarray, hi: np.ndarray):
+        """(query, triangle) pairs whose cubes overlap the query boxes ``lo``..``hi`` (k, 3)."""
+        dims = self.dims
+        a = np.clip(np.floor((lo - self.lower) / self.side).astype(np.int64), 0, dims - 1)
+        b = np.clip(np.floor((hi - self.lower) / self.side).astype(np.int64), 0, dims - 1)
+        ext = b - a + 1
+        counts = ext.prod(axis=1)
+        q = np.repeat(np.arange(len(lo)), counts)
+        local = np.arange(q.size) - np.repeat(np.cumsum(counts) - counts, counts)
+        e = ext[q]
+        key = ((a[q, 0] + local // (e[:, 1] * e[:, 2])) * dims[1] + a[q, 1] + (local // e[:, 2]) % e[:, 1]) * dims[
+            2
+        ] + a[q, 2] + local % e[:, 2]
+        n_in = self.start[key + 1] - self.start[key]
+        q2 = np.repeat(q, n_in)
+        pos = np.arange(q2.size) - np.repeat(np.cumsum(n_in) - n_in, n_in) + np.repeat(self.start[key], n_in)
+        return q2, self.tri_of[pos]
+
+
+def _ray_triangle(orig, dirs, tri, eps=1e-12):
+    """Moeller-Trumbore: distance along each ray to its paired triangle (NaN for a miss)."""
+    e1 = tri[:, 1] - tri[:, 0]
+    e2 = tri[:, 2] - tri[:, 0]
+    pvec = np.cross(dirs, e2)
+    det = np.einsum("ij,ij->i", e1, pvec)
+    ok = np.abs(det) > 1e-300
+    inv = np.where(ok, 1.0 / np.where(ok, det, 1.0), 0.0)
+    tvec = orig - tri[:, 0]
+    u = np.einsum("ij,ij->i", tvec, pvec) * inv
+    qvec = np.cross(tvec, e1)
+    v = np.einsum("ij,ij->i", dirs, qvec) * inv
+    t = np.einsum("ij,ij->i", e2, qvec) * inv
+    hit = ok & (u >= -eps) & (v >= -eps) & (u + v <= 1 + eps)
+    return np.where(hit, t, np.nan)
+
+
+def _first_hits(v, f, origins, dirs, skip: float) -> np.ndarray:
+    """Distance from each origin along its unit direction to the first triangle beyond ``skip``.
+
+    Rays march through the cube grid of a :class:`_VoxelIndex` one cube length at a
+    time, all rays together; a ray stops at its first piece with a hit (the first
+    hit overall, since each piece only accepts hits inside itself).
+    """
+    tri = v[f]
+    index = _VoxelIndex(tri)
+    h = index.side
+    out = np.full(len(origins), np.inf)
+    lower, upper = index.lower - h, index.lower + index.dims * h + h
+    active = np.arange(len(origins))
+    step = 0
+    while active.size:
+        t0, t1 = step * h, (step + 1) * h
+        p0 = origins[active] + t0 * dirs[active]
+        p1 = origins[active] + t1 * dirs[active]
+        inside = np.all((np.minimum(p0, p1) <= upper) & (np.maximum(p0, p1) >= lower), axis=1)
+        active, p0, p1 = active[inside], p0[inside], p1[inside]
+        if not active.size:
+            break
+        q, t_id = index.candidates(np.minimum(p0, p1), np.maximum(p0, p1))
+        ray = active[q]
+        t = _ray_triangle(origins[ray], dirs[ray], tri[t_id])
+        good = (t > skip) & (t >= t0 - 1e-9 * h) & (t <= t1 + 1e-9 * h)
+        if good.any():
+            np.minimum.at(out, ray[good], t[good])
+        active = active[~np.isfinite(out[active])]
+        step += 1
+    return out
+
+
 def local_thickness(mesh, points, normals) -> np.ndarray:
     """Distance through the body from surface points along their inward normals.
 
@@ -580,14 +690,12 @@ def local_thickness(mesh, points, normals) -> np.ndarray:
 
     Notes
     -----
-    Rays are cast with trimesh's pure-numpy ray-triangle test
-    (``trimesh.ray.ray_triangle.RayMeshIntersector``, r-tree broad phase), in
-    double precision. Hits within 1e-7 of the bounding-box diagonal of the start
+    Rays are cast in double precision with the Moeller-Trumbore test (Moeller &
+    Trumbore 1997, "Fast, minimum storage ray-triangle intersection", J. Graphics
+    Tools 2(1)), over a uniform cube grid of the triangles that all rays march
+    through together. Hits within 1e-7 of the bounding-box diagonal of the start
     are taken to be the starting surface.
     """
-    trimesh = _trimesh()
-    from trimesh.ray.ray_triangle import RayMeshIntersector
-
     v, f = _arrays(mesh)
     pts = np.asarray(points, dtype=np.float64)
     nrm = np.asarray(normals, dtype=np.float64)
@@ -596,18 +704,11 @@ def local_thickness(mesh, points, normals) -> np.ndarray:
     length = np.linalg.norm(nrm, axis=1)
     if np.any(~np.isfinite(length)) or np.any(length == 0):
         raise InputError("every normal must be a finite non-zero vector")
-    out = np.full(len(pts), np.inf)
-    if len(pts) == 0:
-        return out
+    if len(pts) == 0 or len(f) == 0:
+        return np.full(len(pts), np.inf)
     direction = -nrm / length[:, None]
-    m = mesh if hasattr(mesh, "faces") else trimesh.Trimesh(vertices=v, faces=f, process=False, validate=False)
-    locations, index_ray, _ = RayMeshIntersector(m).intersects_location(pts, direction, multiple_hits=True)
-    if len(index_ray):
-        dist = np.einsum("ij,ij->i", locations - pts[index_ray], direction[index_ray])
-        diag = float(np.linalg.norm(v.max(axis=0) - v.min(axis=0)))
-        far = dist > _SELF_HIT_RTOL * diag
-        np.minimum.at(out, index_ray[far], dist[far])
-    return out
+    diag = float(np.linalg.norm(v.max(axis=0) - v.min(axis=0)))
+    return _first_hits(v, f, pts, direction, _SELF_HIT_RTOL * diag)
 
 
 @dataclass(frozen=True)
