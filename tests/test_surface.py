@@ -206,6 +206,12 @@ def test_weld_merges_only_close_vertices():
     assert len(v2) == 3 and f2.tolist() == [[0, 1, 2], [0, 2, 1]]
     v3, _ = weld_vertices(v, f, 1e-12)
     assert len(v3) == 4
+    # bitwise duplicates (and -0.0 == 0.0) merge even with zero tolerance, order kept
+    v4 = np.array([[1, 0, 0], [0, 0, 0], [1, 0, 0], [-0.0, 0, 0], [0, 1, 0]], float)
+    f4 = np.array([[0, 1, 4], [2, 4, 3]])
+    v5, f5 = weld_vertices(v4, f4, 0.0)
+    np.testing.assert_array_equal(v5, [[1, 0, 0], [0, 0, 0], [0, 1, 0]])
+    assert f5.tolist() == [[0, 1, 2], [0, 2, 1]]
 
 
 # -- saving --------------------------------------------------------------------------------

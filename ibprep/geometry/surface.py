@@ -273,6 +273,24 @@ def check_surface(mesh) -> SurfaceReport:
 
 
 # ------------------------------------------------------------------------- welding
+def _unique_rows(v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Bitwise-equal rows merged, first occurrences kept in order: (unique rows, inverse)."""
+    bits = np.ascontiguousarray(v + 0.0).view(np.int64)  # + 0.0 turns -0.0 into 0.0
+    order = np.lexsort(bits.T[::-1])
+    sorted_bits = bits[order]
+    new_run = np.ones(len(v), dtype=bool)
+    new_run[1:] = np.any(sorted_bits[1:] != sorted_bits[:-1], axis=1)
+    run = np.cumsum(new_run) - 1
+    first = np.full(run[-1] + 1, len(v), dtype=np.int64)
+    np.minimum.at(first, run, order)
+    keep = np.argsort(first)  # unique rows in order of first occurrence
+    rank = np.empty_like(keep)
+    rank[keep] = np.arange(len(keep))
+    inverse = np.empty(len(v), dtype=np.int64)
+    inverse[order] = rank[run]
+    return v[first[keep]], inverse
+
+
 def weld_vertices(vertices, faces, tolerance: float):
     """Merge vertices closer than ``tolerance`` and drop the unused ones.
 
@@ -281,7 +299,7 @@ def weld_vertices(vertices, faces, tolerance: float):
     vertices : (n, 3) float — metres (finite).
     faces : (m, 3) int — vertex indices.
     tolerance : float — metres; vertices within this distance (chains included)
-        become one, placed at the lowest-index member.
+        become one, placed at one of its members.
 
     Returns
     -------
@@ -295,9 +313,12 @@ def weld_vertices(vertices, faces, tolerance: float):
 
     v = np.asarray(vertices, dtype=np.float64)
     f = np.asarray(faces, dtype=np.int64)
-    n = len(v)
-    if n == 0:
+    if len(v) == 0:
         return v.copy(), f.copy()
+    # Exact duplicates first (an STL repeats each corner bit for bit), then near ones.
+    v, exact = _unique_rows(v)
+    f = exact[f]
+    n = len(v)
     pairs = cKDTree(v).query_pairs(float(tolerance), output_type="ndarray") if tolerance > 0 else np.empty((0, 2), int)
     if len(pairs):
         graph = coo_matrix((np.ones(len(pairs), np.int8), (pairs[:, 0], pairs[:, 1])), shape=(n, n))
@@ -551,8 +572,9 @@ def surface_markers(mesh, spacing: float):
     cell = np.floor((pts - pts.min(axis=0)) / h).astype(np.int64)
     axis = np.abs(nrm).argmax(axis=1)
     side = 2 * axis + (nrm[np.arange(len(nrm)), axis] < 0)
-    key = np.column_stack([cell, side])
-    _, group = np.unique(key, axis=0, return_inverse=True)
+    dims = cell.max(axis=0) + 1
+    key = ((cell[:, 0] * dims[1] + cell[:, 1]) * dims[2] + cell[:, 2]) * 6 + side
+    _, group = np.unique(key, return_inverse=True)
     group = group.ravel()
     k = group.max() + 1
     a = np.bincount(group, weights=area, minlength=k)
