@@ -68,14 +68,20 @@ def wing_stations(section: Section, segments: int) -> np.ndarray:
 
     Notes
     -----
-    Equidistributes ``ds + lambda * dtheta`` averaged over both surfaces, with
-    ``s`` the arc length, ``theta`` the tangent direction and ``lambda = 7 r_LE``,
-    so the spacing where the curvature is 1/r_LE is 1/8 of the flat-part spacing.
+    Equidistributes arc length weighted by a density ``w`` averaged over both
+    surfaces: ``w = min(8, max(1 + 7 r_LE kappa, h / (3 y_t)))``, with ``kappa``
+    the curvature and ``h`` the unweighted spacing. The first term makes the
+    spacing where the curvature is 1/r_LE 1/8 of the flat-part spacing; the
+    second keeps the spacing within about three half-thicknesses where the
+    section is thin (near the trailing edge), so the thin tube of a rounded end
+    there is not cut into needles. The cap at 8 bounds the spacing ratio.
     """
     k = int(segments)
     xf = cosine_stations(_FINE_SEGMENTS)
     lam = (_LE_GRADING - 1.0) * section.le_radius
-    cost = np.zeros(len(xf) - 1)
+    xm = 0.5 * (xf[1:] + xf[:-1])
+    yt = section.thickness(xm)
+    surfaces = []
     for xs, ys in (section.upper(xf), section.lower(xf)):
         dx, dy = np.diff(xs), np.diff(ys)
         ds = np.hypot(dx, dy)
@@ -84,7 +90,13 @@ def wing_stations(section: Section, segments: int) -> np.ndarray:
         seg_turn = np.zeros_like(ds)
         seg_turn[:-1] += 0.5 * turn
         seg_turn[1:] += 0.5 * turn
-        cost += 0.5 * (ds + lam * seg_turn)
+        surfaces.append((ds, seg_turn / ds))
+    h_plain = 0.5 * sum(ds.sum() for ds, _ in surfaces) / k
+    with np.errstate(divide="ignore"):
+        thin = np.where(yt > 0, h_plain / (3.0 * np.where(yt > 0, yt, 1.0)), np.inf)
+    cost = np.zeros(len(xf) - 1)
+    for ds, kappa in surfaces:
+        cost += 0.5 * ds * np.minimum(_LE_GRADING, np.maximum(1.0 + lam * kappa, thin))
     cum = np.concatenate([[0.0], np.cumsum(cost)])
     x = np.interp(np.linspace(0.0, cum[-1], k + 1), cum, xf)
     x[0], x[-1] = 0.0, 1.0
