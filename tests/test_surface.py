@@ -47,7 +47,7 @@ def _write_stl(path, vertices, faces, ascii=True):
 
 # -- check_surface -------------------------------------------------------------------------
 def test_report_for_a_good_box():
-    # Unit cube: volume 1, area 6 (elementary geometry).
+    # Unit cube: volume 1, area 6 (elementary geometry; common practice, no single source).
     rep = check_surface(_box())
     assert rep.ok and rep.closed and rep.oriented and rep.outward
     assert rep.n_bodies == 1 and rep.n_faces == 12
@@ -244,6 +244,8 @@ def test_save_replaces_and_rejects_bad_paths(tmp_path):
 # -- markers -------------------------------------------------------------------------------
 @pytest.mark.parametrize("spacing", [0.05, 0.2, 0.5])
 def test_markers_on_a_sphere(spacing):
+    # Sphere facts (REFERENCES §6.2 [memory: high]): normals radial; closed surface so
+    # sum n dA = 0 (divergence theorem, common practice, no single source).
     R = 1.0
     s = _sphere(R, subdivisions=4)
     pts, nrm, area = surface_markers(s, spacing)
@@ -281,7 +283,8 @@ def test_markers_bad_spacing(spacing):
 
 # -- local thickness -----------------------------------------------------------------------
 def test_thickness_of_a_sphere_is_its_diameter():
-    # A chord through the centre of a sphere is a diameter, 2R (elementary geometry). The
+    # A chord through the centre of a sphere is a diameter, 2R (elementary geometry, REFERENCES
+    # §6.2 sphere [memory: high]). The
     # icosphere is centrally symmetric with vertices on the sphere, so the antipodal vertex
     # is hit exactly.
     R = 0.7
@@ -292,7 +295,8 @@ def test_thickness_of_a_sphere_is_its_diameter():
 
 
 def test_thickness_of_a_slab_and_its_thin_regions():
-    # A slab of thickness d: rays through the big faces travel exactly d (elementary geometry).
+    # A slab of thickness d: rays through the big faces travel exactly d (elementary geometry;
+    # common practice, no single source).
     d = 0.02
     slab = _box(extents=(1.0, d, 0.5))
     pts, nrm, _ = surface_markers(slab, 0.05)
@@ -307,7 +311,7 @@ def test_thickness_of_a_slab_and_its_thin_regions():
 
 
 def test_wing_is_thin_only_near_the_trailing_edge():
-    # NACA 0012 flat-ended wing: y_t < 0.01 c only aft of about x = 0.95 c (REFERENCES §1.7:
+    # NACA 0012 flat-ended wing: y_t < 0.01 c only aft of about x = 0.95 c (REFERENCES §1.7 [computed]:
     # 95 %c ordinate 0.807 %c) — near the nose the inward normal crosses the whole section.
     wing = make_wing(naca4("0012"), 1.0, 1.0, tips="flat", n_chord=32)
     thin = thin_regions(wing, 0.02, spacing=0.05)
@@ -329,7 +333,7 @@ def test_thickness_bad_input():
 
 
 def test_thickness_agrees_with_trimesh_ray_casting():
-    # Reference library: trimesh.ray.ray_triangle.RayMeshIntersector.intersects_location
+    # Reference library: trimesh.ray.ray_triangle.RayMeshIntersector.intersects_location [computed]
     # (multiple hits, nearest beyond the start), on a cambered wing with rounded ends.
     from trimesh.ray.ray_triangle import RayMeshIntersector
 
