@@ -21,7 +21,8 @@ between the finest and coarsest chordwise spacing keeps every triangle's
 aspect ratio small.
 
 A flat end is the planar end section, triangulated across the thickness at
-each station. A rounded end is half a body of revolution of the end section:
+each station; ahead of x = 2 r_LE it is a fan from a point at x = r_LE on the
+camber line, so the round nose is not cut into slivers. A rounded end is half a body of revolution of the end section:
 at each station, a half circle of radius y_t(x_i) c centred on the camber line,
 in the plane normal to the camber line, bulging outward along the span. For a
 symmetric section each rounded end adds (pi/2) c^3 int y_t(x)^2 dx of volume
@@ -422,6 +423,15 @@ def make_wing(
         counts[yt <= 0] = 0  # LE, and a closed TE: a single vertex
         if style == "flat" and not closed:
             counts[-1] = 1  # the blunt base edge of the side surface
+        # A flat end near a round nose: the stations there are far closer together than
+        # the rings are long, so ring strips would be needles. Stations ahead of
+        # x = 2 r_LE are instead fanned from one point at x = r_LE on the camber line
+        # (about the nose circle's centre), which sees the nose arc in equal small angles.
+        nose = 0
+        if style == "flat":
+            nose = int(np.searchsorted(x, 2.0 * section.le_radius))
+            nose = nose if 2 <= nose < k else 0
+            counts[1:nose] = 1
         base = j * nloop
         # interior ring points, vectorised over stations
         n_int = np.maximum(counts - 1, 0)
@@ -444,7 +454,14 @@ def make_wing(
         ring_ids[rstart + counts] = base + low_idx
         inner = np.repeat(rstart, n_int) + jr
         ring_ids[inner] = nv + np.arange(st.size)
-        tris.append(_zip_rings(ring_ids, counts, reverse=(sign < 0)))
+        tris.append(_zip_rings(ring_ids[rstart[nose]:], counts[nose:], reverse=(sign < 0)))
+        if nose:
+            x_p = np.array([section.le_radius])
+            cap_v = np.vstack([cap_v, place(x_p, section.camber(x_p), np.zeros(1), j)])
+            inner_j = ring_ids[rstart[nose] + 1: rstart[nose] + counts[nose]]
+            cycle = np.concatenate([base + up_idx[nose::-1], base + low_idx[1: nose + 1], inner_j[::-1]])
+            fan = np.column_stack([np.full(len(cycle), nv + st.size), cycle, np.roll(cycle, -1)])
+            tris.append(fan[:, ::-1] if sign < 0 else fan)
         if style == "round" and not closed:
             last = ring_ids[rstart[-1]: rstart[-1] + counts[-1] + 1]
             tris.append(_half_disc(last, reverse=(sign < 0)))
