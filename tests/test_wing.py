@@ -162,6 +162,26 @@ def test_cap_adds_its_volume():
     assert errs[-1] < 3e-3, errs  # 0.3 % of the cap at 96 chordwise intervals
 
 
+def test_tip_resolution_can_be_set():
+    # The half circle of the thickest station is split into n_tip intervals; an inscribed
+    # half polygon has area (n/2) sin(pi/n) r^2 of (pi/2) r^2, a deficit shrinking like
+    # (pi/n)^2 / 6 (elementary geometry; common practice, no single source).
+    sec = naca4("0012")
+    exact = cap_volume(sec, 1.0)
+    deficits = []
+    for n_tip in (4, 8, 16):
+        m = make_wing(sec, 1.0, 2.0, tips="round", root="flat", n_chord=48, n_tip=n_tip)
+        lay = m.metadata["wing"]
+        assert lay.n_tip == n_tip
+        deficits.append(exact - (m.volume - _loop_area(lay.loop) * (lay.z_tip - lay.z_root)))
+    deficits = np.array(deficits) / exact
+    assert np.all(deficits > 0) and np.all(np.diff(deficits) < 0), deficits
+    polygon = 1 - np.array([4, 8, 16]) / 2 * np.sin(np.pi / np.array([4, 8, 16])) / (np.pi / 2)
+    # thinner stations get proportionally fewer intervals, so no ring beats the thickest one
+    assert np.all(deficits >= polygon)
+    assert deficits[1] / deficits[2] > 3.0, deficits  # second order in 1/n_tip
+
+
 # -- body frame and conventions --------------------------------------------------------------
 def test_body_frame_root_at_origin_span_along_z():
     # DESIGN.md §3: chord along +x from the LE at the origin, thickness +y, span +z from 0.

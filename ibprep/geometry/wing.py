@@ -229,6 +229,121 @@ def _half_disc(ring: np.ndarray, reverse: bool) -> np.ndarray:
     return t[:, ::-1] if reverse else t
 
 
+@dataclass(frozen=True)
+class _SpanSections:
+    """Where each spanwise station's section goes: arrays of shape (n_span + 1,).
+
+    ``z`` (metres) span position, ``chord`` (metres), ``x_le`` (metres) leading-edge
+    offset along x, ``pitch`` (radians, nose-up) about the quarter chord.
+    """
+
+    z: np.ndarray
+    chord: np.ndarray
+    x_le: np.ndarray
+    pitch: np.ndarray
+
+    def place(self, px, py, pw, j: int) -> np.ndarray:
+        """(m, 3) body-frame points of unit-chord section points (px, py) at station j.
+
+        ``pw`` is an offset along z in chords (a rounded end's bulge).
+        """
+        c, t = self.chord[j], self.pitch[j]
+        ox, oy = (np.asarray(px) - 0.25) * c, np.asarray(py) * c
+        X = self.x_le[j] + 0.25 * c + ox * math.cos(t) + oy * math.sin(t)
+        Y = -ox * math.sin(t) + oy * math.cos(t)
+        return np.column_stack([X, Y, self.z[j] + np.asarray(pw) * c])
+
+
+def _side_surface(loop: np.ndarray, sec: _SpanSections) -> tuple[np.ndarray, np.ndarray]:
+    """Vertices (one loop per station, station-major) and outward faces of the straight part."""
+    nloop, n_span = len(loop), len(sec.z) - 1
+    c_col, t_col = sec.chord[:, None], sec.pitch[:, None]
+    ox = (loop[None, :, 0] - 0.25) * c_col
+    oy = loop[None, :, 1] * c_col
+    X = sec.x_le[:, None] + 0.25 * c_col + ox * np.cos(t_col) + oy * np.sin(t_col)
+    Y = -ox * np.sin(t_col) + oy * np.cos(t_col)
+    Z = np.broadcast_to(sec.z[:, None], X.shape)
+    verts = np.stack([X, Y, Z], axis=-1).reshape(-1, 3)
+    jj, ii = np.meshgrid(np.arange(n_span), np.arange(nloop), indexing="ij")
+    A = (jj * nloop + ii).ravel()
+    B = (jj * nloop + (ii + 1) % nloop).ravel()
+    C = B + nloop
+    D = A + nloop
+    # Diagonals alternate from one spanwise row to the next: on a twisted (non-planar)
+    # quad each choice biases the volume by O(dtheta^2) with opposite signs, so
+    # alternating rows cancel the bias to second order in the spanwise spacing.
+    odd = (jj.ravel() % 2).astype(bool)
+    t1 = np.where(odd[:, None], np.column_stack([A, B, D]), np.column_stack([A, B, C]))
+    t2 = np.where(odd[:, None], np.column_stack([B, C, D]), np.column_stack([A, C, D]))
+    return verts, np.concatenate([t1, t2])
+
+
+def _end_cap(section, x, counts, style, sign, ends, first_id, sec: _SpanSections, j: int):
+    """Vertices and faces closing one end of the straight part.
+
+    Parameters
+    ----------
+    section : Section; x : (k + 1,) float — camber-line stations, fraction of chord.
+    counts : (k + 1,) int — wanted intervals across each station's ring.
+    style : "flat" or "round"; sign : +1 for the tip end (outward +z), -1 for the root.
+    ends : ((k + 1,), (k + 1,)) int — ids of the end section's upper and lower points.
+    first_id : int — id of the first new vertex.
+    sec, j : the span stations and the index of this end's station.
+
+    Returns
+    -------
+    vertices : (m, 3) float — metres, the new vertices; faces : (f, 3) int — outward.
+    """
+    k = len(x) - 1
+    up_ids, low_ids = ends
+    yt = section.thickness(x)
+    theta = np.arctan(section.camber_slope(x))
+    yc = section.camber(x)
+    counts = np.maximum(counts, 2 if style == "round" else 1)
+    counts[yt <= 0] = 0  # LE, and a closed TE: a single vertex
+    if style == "flat" and not section.closed_te:
+        counts[-1] = 1  # the blunt base edge of the side surface
+    # A flat end near a round nose: the stations there are far closer together than
+    # the rings are long, so ring strips would be needles. Stations ahead of
+    # x = 2 r_LE are instead fanned from one point at x = r_LE on the camber line
+    # (about the nose circle's centre), which sees the nose arc in equal small angles.
+    nose = 0
+    if style == "flat":
+        nose = int(np.searchsorted(x, 2.0 * section.le_radius))
+        nose = nose if 2 <= nose < k else 0
+        counts[1:nose] = 1
+    # interior ring points, vectorised over stations
+    n_int = np.maximum(counts - 1, 0)
+    st = np.repeat(np.arange(k + 1), n_int)
+    jr = np.arange(st.size) - np.repeat(np.cumsum(n_int) - n_int, n_int) + 1
+    frac = jr / counts[st]
+    if style == "round":
+        radial, out = np.cos(np.pi * frac), np.sin(np.pi * frac)
+    else:
+        radial, out = 1.0 - 2.0 * frac, np.zeros_like(frac)
+    px = x[st] - np.sin(theta[st]) * yt[st] * radial
+    py = yc[st] + np.cos(theta[st]) * yt[st] * radial
+    verts = [sec.place(px, py, sign * yt[st] * out, j)]
+    # global ids of each ring: upper end, interior..., lower end
+    ring_ids = np.empty(int(np.sum(counts + 1)), dtype=np.int64)
+    rstart = np.concatenate([[0], np.cumsum(counts + 1)[:-1]])
+    ring_ids[rstart] = up_ids
+    ring_ids[rstart + counts] = low_ids
+    ring_ids[np.repeat(rstart, n_int) + jr] = first_id + np.arange(st.size)
+    faces = [_zip_rings(ring_ids[rstart[nose]:], counts[nose:], reverse=(sign < 0))]
+    if nose:
+        x_p = np.array([section.le_radius])
+        verts.append(sec.place(x_p, section.camber(x_p), np.zeros(1), j))
+        inner = ring_ids[rstart[nose] + 1: rstart[nose] + counts[nose]]
+        cycle = np.concatenate([up_ids[nose::-1], low_ids[1: nose + 1], inner[::-1]])
+        fan = np.column_stack([np.full(len(cycle), first_id + st.size), cycle, np.roll(cycle, -1)])
+        faces.append(fan[:, ::-1] if sign < 0 else fan)
+    if style == "round" and not section.closed_te:
+        last = ring_ids[rstart[-1]: rstart[-1] + counts[-1] + 1]
+        faces.append(_half_disc(last, reverse=(sign < 0)))
+    return np.concatenate(verts), np.concatenate(faces)
+
+
 def make_wing(
     section,
     chord: float,
@@ -349,7 +464,6 @@ def make_wing(
         else:
             n_span = max(1, int(math.ceil(length / h_span)))
     h_cap = min(h_span, length / n_span)  # arc spacing aimed for around a cap
-    h_span = length / n_span
 
     # ---- section outline (unit chord) at the stations: shared LE (and TE if closed)
     closed = section.closed_te
@@ -366,112 +480,31 @@ def make_wing(
     # ---- spanwise placement of the straight part
     z0 = -0.5 * b if centred else 0.0
     z_root, z_tip = z0 + e_root, z0 + b - e_tip
-    s = np.linspace(0.0, 1.0, n_span + 1)
-    zs = z_root + s * length
-    cs = c_root * (1.0 + (lam - 1.0) * s)
-    xle = (zs - z_root) * math.tan(sweep)
-    th = twist * s
+    frac = np.linspace(0.0, 1.0, n_span + 1)
+    zs = z_root + frac * length
+    span_sections = _SpanSections(
+        z=zs, chord=c_root * (1.0 + (lam - 1.0) * frac), x_le=(zs - z_root) * math.tan(sweep), pitch=twist * frac
+    )
+    side_v, side_f = _side_surface(loop, span_sections)
+    verts, tris, nv = [side_v], [side_f], len(side_v)
 
-    def place(px, py, pw, j):
-        """Unit-chord section points (px, py) at span station j, offset pw (chords) along z."""
-        c, t = cs[j], th[j]
-        ox, oy = (px - 0.25) * c, py * c
-        X = xle[j] + 0.25 * c + ox * math.cos(t) + oy * math.sin(t)
-        Y = -ox * math.sin(t) + oy * math.cos(t)
-        return np.column_stack([X, Y, zs[j] + pw * c])
-
-    # side surface: loop x span stations, quads split (A, B, C), (A, C, D)
-    c_col, t_col = cs[:, None], th[:, None]
-    ox = (loop[None, :, 0] - 0.25) * c_col
-    oy = loop[None, :, 1] * c_col
-    X = xle[:, None] + 0.25 * c_col + ox * np.cos(t_col) + oy * np.sin(t_col)
-    Y = -ox * np.sin(t_col) + oy * np.cos(t_col)
-    Z = np.broadcast_to(zs[:, None], X.shape)
-    side_v = np.stack([X, Y, Z], axis=-1).reshape(-1, 3)
-    jj, ii = np.meshgrid(np.arange(n_span), np.arange(nloop), indexing="ij")
-    A = (jj * nloop + ii).ravel()
-    B = (jj * nloop + (ii + 1) % nloop).ravel()
-    C = B + nloop
-    D = A + nloop
-    # Diagonals alternate from one spanwise row to the next: on a twisted (non-planar)
-    # quad each choice biases the volume by O(dtheta^2) with opposite signs, so
-    # alternating rows cancel the bias to second order in the spanwise spacing.
-    odd = (jj.ravel() % 2).astype(bool)
-    t1 = np.where(odd[:, None], np.column_stack([A, B, D]), np.column_stack([A, B, C]))
-    t2 = np.where(odd[:, None], np.column_stack([B, C, D]), np.column_stack([A, C, D]))
-    side_f = np.concatenate([t1, t2])
-    verts = [side_v]
-    tris = [side_f]
-    nv = len(side_v)
-
-    # ---- caps
-    yt = section.thickness(x)
-    theta = np.arctan(section.camber_slope(x))
-    yc = section.camber(x)
-    nx_, ny_ = -np.sin(theta), np.cos(theta)
-    target = h_cap
-    if n_tip is not None:
-        scale_tip = n_tip / ytmax
-    for end, style, j, sign in (("root", root, 0, -1.0), ("tip", tips, n_span, +1.0)):
-        c_end = cs[j]
+    # ---- ends
+    for style, j, sign in ((root, 0, -1.0), (tips, n_span, +1.0)):
         if n_tip is None:
-            per = (np.pi if style == "round" else 2.0) * c_end / target
-            counts = np.ceil(per * yt).astype(np.int64)
+            per = (np.pi if style == "round" else 2.0) * span_sections.chord[j] / h_cap
+            counts = np.ceil(per * section.thickness(x)).astype(np.int64)
         else:
-            counts = np.ceil(scale_tip * yt - 1e-9).astype(np.int64)
-        counts = np.maximum(counts, 2 if style == "round" else 1)
-        counts[yt <= 0] = 0  # LE, and a closed TE: a single vertex
-        if style == "flat" and not closed:
-            counts[-1] = 1  # the blunt base edge of the side surface
-        # A flat end near a round nose: the stations there are far closer together than
-        # the rings are long, so ring strips would be needles. Stations ahead of
-        # x = 2 r_LE are instead fanned from one point at x = r_LE on the camber line
-        # (about the nose circle's centre), which sees the nose arc in equal small angles.
-        nose = 0
-        if style == "flat":
-            nose = int(np.searchsorted(x, 2.0 * section.le_radius))
-            nose = nose if 2 <= nose < k else 0
-            counts[1:nose] = 1
-        base = j * nloop
-        # interior ring points, vectorised over stations
-        n_int = np.maximum(counts - 1, 0)
-        st = np.repeat(np.arange(k + 1), n_int)
-        jr = np.arange(st.size) - np.repeat(np.cumsum(n_int) - n_int, n_int) + 1
-        frac = jr / counts[st]
-        if style == "round":
-            phi = np.pi * frac
-            radial, out = np.cos(phi), np.sin(phi)
-        else:
-            radial, out = 1.0 - 2.0 * frac, np.zeros_like(frac)
-        px = x[st] + nx_[st] * yt[st] * radial
-        py = yc[st] + ny_[st] * yt[st] * radial
-        pw = sign * yt[st] * out
-        cap_v = place(px, py, pw, j)
-        # global ids of each ring (upper end, interior..., lower end)
-        ring_ids = np.empty(int(np.sum(counts + 1)), dtype=np.int64)
-        rstart = np.concatenate([[0], np.cumsum(counts + 1)[:-1]])
-        ring_ids[rstart] = base + up_idx
-        ring_ids[rstart + counts] = base + low_idx
-        inner = np.repeat(rstart, n_int) + jr
-        ring_ids[inner] = nv + np.arange(st.size)
-        tris.append(_zip_rings(ring_ids[rstart[nose]:], counts[nose:], reverse=(sign < 0)))
-        if nose:
-            x_p = np.array([section.le_radius])
-            cap_v = np.vstack([cap_v, place(x_p, section.camber(x_p), np.zeros(1), j)])
-            inner_j = ring_ids[rstart[nose] + 1: rstart[nose] + counts[nose]]
-            cycle = np.concatenate([base + up_idx[nose::-1], base + low_idx[1: nose + 1], inner_j[::-1]])
-            fan = np.column_stack([np.full(len(cycle), nv + st.size), cycle, np.roll(cycle, -1)])
-            tris.append(fan[:, ::-1] if sign < 0 else fan)
-        if style == "round" and not closed:
-            last = ring_ids[rstart[-1]: rstart[-1] + counts[-1] + 1]
-            tris.append(_half_disc(last, reverse=(sign < 0)))
+            counts = np.ceil(n_tip * section.thickness(x) / ytmax - 1e-9).astype(np.int64)
+        ends = (j * nloop + up_idx, j * nloop + low_idx)
+        cap_v, cap_f = _end_cap(section, x, counts, style, sign, ends, nv, span_sections, j)
         verts.append(cap_v)
+        tris.append(cap_f)
         nv += len(cap_v)
 
     vertices = np.concatenate(verts)
     faces_arr = np.concatenate(tris)
     mesh = mesh_from_arrays(vertices, faces_arr)
-    tip_counts = int(n_tip) if n_tip is not None else int(np.ceil(np.pi * c_tip / target * ytmax))
+    tip_counts = int(n_tip) if n_tip is not None else int(np.ceil(np.pi * c_tip / h_cap * ytmax))
     mesh.metadata["wing"] = WingLayout(
         n_chord=k, n_span=int(n_span), n_tip=tip_counts, stations=x, loop=loop,
         z_root=float(z_root), z_tip=float(z_tip),
