@@ -340,13 +340,39 @@ def test_thickness_agrees_with_trimesh_ray_casting():
     wing = make_wing("4412", 1.0, 1.5, tips="round", n_chord=20, taper=0.6, sweep=0.3, twist=-0.2)
     pts, nrm, _ = surface_markers(wing, 0.08)
     ours = local_thickness(wing, pts, nrm)
-    loc, ray, _ = RayMeshIntersector(wing).intersects_location(pts, -nrm, multiple_hits=True)
+    loc, ray, tri = RayMeshIntersector(wing).intersects_location(pts, -nrm, multiple_hits=True)
     dist = np.einsum("ij,ij->i", loc - pts[ray], -nrm[ray])
     ref = np.full(len(pts), np.inf)
-    keep = dist > 1e-7 * np.linalg.norm(np.ptp(wing.vertices, axis=0))
+    # exits only: the hit face's outward normal points along the ray (see local_thickness)
+    exits = np.einsum("ij,ij->i", wing.face_normals[tri], -nrm[ray]) > 0
+    keep = exits & (dist > 1e-7 * np.linalg.norm(np.ptp(wing.vertices, axis=0)))
     np.minimum.at(ref, ray[keep], dist[keep])
     assert np.all(np.isfinite(ours))
     np.testing.assert_allclose(ours, ref, rtol=1e-9, atol=1e-12)
+
+
+def test_points_slightly_off_the_surface_still_see_the_far_side():
+    # A marker a hair outside its own face must not report that face as the opposite side:
+    # only exits count. Slab of thickness d (elementary geometry; common practice, no single source).
+    d = 0.02
+    slab = _box(extents=(1.0, d, 0.5))
+    pts = np.array([[0.1, 0.5 * d + 1e-6, 0.1], [0.1, 0.5 * d - 1e-6, 0.1]])
+    nrm = np.array([[0, 1.0, 0], [0, 1.0, 0]])
+    np.testing.assert_allclose(local_thickness(slab, pts, nrm), [d + 1e-6, d - 1e-6], rtol=1e-9)
+    # capped search: beyond max_distance nothing is reported
+    assert np.all(np.isinf(local_thickness(slab, pts, nrm, max_distance=0.5 * d)))
+
+
+def test_demo_wing_thin_regions_are_at_the_trailing_edge_and_tips():
+    # Demo wing of DESIGN.md §6 (NACA 0015, c 60 mm, span 180 mm, rounded tips) at a
+    # 1.25 mm limit: thin only where 2 y_t c < 1.25 mm, i.e. aft of about 0.96 c
+    # (equation of REFERENCES §1.1, [computed]), or within the rounded tips.
+    wing = make_wing("0015", 0.06, 0.18, tips="round")
+    thin = thin_regions(wing, 1.25e-3, spacing=1.25e-3)
+    assert thin.count > 0 and thin.min_thickness > 1e-5  # no self hits
+    lay = wing.metadata["wing"]
+    in_tips = (thin.points[:, 2] < lay.z_root) | (thin.points[:, 2] > lay.z_tip)
+    assert np.all((thin.points[:, 0] > 0.9 * 0.06) | in_tips)
 
 
 def test_thickness_does_not_modify_inputs():
