@@ -305,6 +305,17 @@ def test_bad_wing_inputs(kwargs, match):
         make_wing(**args)
 
 
+def test_folding_sections_are_refused():
+    # Offsets perpendicular to a camber line cross where y_t exceeds its radius of curvature
+    # (elementary differential geometry of offset curves; common practice, no single source).
+    assert naca4("0012").fold_ratio == 0.0
+    assert naca4("6224").fold_ratio < 0.4
+    assert naca4("7124").fold_ratio > 1.0
+    with pytest.raises(InputError, match=r"NACA 7124 is thicker than its camber line's radius"):
+        make_wing("7124", 1.0, 3.0)
+    make_wing("4412", 1.0, 3.0)  # ordinary sections pass
+
+
 def test_bad_section_type():
     with pytest.raises(InputError, match="section must be a Section"):
         make_wing(12, 1.0, 1.0)

@@ -306,6 +306,22 @@ class Section:
         return float(2.0 * self.thickness(np.array([1.0]))[0])
 
     @property
+    def fold_ratio(self) -> float:
+        """Largest y_t(x) * kappa_c(x): half-thickness over the camber line's radius of curvature.
+
+        Dimensionless; 0 for a symmetric section. At 1 or more the perpendicular
+        construction folds the concave (lower) side: offsets from neighbouring
+        camber points cross. Only extreme codes get there (e.g. 7124: 1.3, with
+        camber at 10 % chord); NACA 6224 gives 0.34.
+        """
+        if self.m == 0.0:
+            return 0.0
+        x = np.linspace(0.0, 1.0, 4001)
+        curvature2 = np.where(x <= self.p, 2 * self.m / self.p**2, 2 * self.m / (1 - self.p) ** 2)
+        kappa = curvature2 / (1.0 + self.camber_slope(x) ** 2) ** 1.5
+        return float(np.max(self.thickness(x) * kappa))
+
+    @property
     def is_symmetric(self) -> bool:
         """True when the section has no camber (m = 0)."""
         return self.m == 0.0

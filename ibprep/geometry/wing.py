@@ -53,6 +53,9 @@ _TIPS = ("flat", "round")
 _CAP_GAUSS_POINTS = 48
 _MAX_SWEEP = math.radians(75.0)
 _MAX_TWIST = math.radians(60.0)
+# Sections whose half-thickness reaches this fraction of the camber line's radius of
+# curvature are refused: the discrete end rings start to cross just below 1 (0.98 seen).
+_MAX_FOLD_RATIO = 0.9
 
 
 def wing_stations(section: Section, segments: int) -> np.ndarray:
@@ -397,7 +400,9 @@ def make_wing(
     ------
     InputError
         Non-positive chord, span or taper; angles out of range; unknown tip
-        style; a span too short for its rounded ends; bad counts.
+        style; a span too short for its rounded ends; bad counts; a section
+        whose thickness folds its camber-normal construction
+        (:attr:`Section.fold_ratio` >= 0.9, only extreme codes such as 7124).
 
     Notes
     -----
@@ -426,6 +431,13 @@ def make_wing(
     root = tips if root is None else root
     if root not in _TIPS:
         raise InputError(f"root must be one of {_TIPS} or None, got {root!r}")
+    if section.fold_ratio >= _MAX_FOLD_RATIO:
+        raise InputError(
+            f"NACA {section.code} is thicker than its camber line's radius of curvature allows "
+            f"(half-thickness x curvature reaches {section.fold_ratio:.2f}); the end caps, laid "
+            "off perpendicular to the camber line, would fold. Use a thinner section or put the "
+            "maximum camber further aft (second digit 2 or more)"
+        )
     n_chord = _count("n_chord", n_chord, 4)
     n_span = _count("n_span", n_span, 1)
     n_tip = _count("n_tip", n_tip, 2)
