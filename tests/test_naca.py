@@ -1,6 +1,7 @@
 """NACA 4-digit sections: ordinates, areas, nose radius, outline invariants."""
 
 import dataclasses
+import pickle
 
 import numpy as np
 import pytest
@@ -237,6 +238,10 @@ def test_cosine_stations_cluster_at_both_edges():
 
 def test_section_is_frozen_and_arrays_read_only():
     sec = naca4("0012")
+    back = pickle.loads(pickle.dumps(sec))
+    assert back == sec and not back.x.flags.writeable
+    np.testing.assert_array_equal(back.y, sec.y)
+    assert dataclasses.replace(sec, n=41).x.shape == (41,)
     with pytest.raises(dataclasses.FrozenInstanceError, match="cannot assign"):
         sec.t = 0.2
     with pytest.raises(ValueError, match="read-only"):

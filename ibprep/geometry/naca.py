@@ -192,6 +192,11 @@ class Section:
         set_(self, "x", _readonly(xs))
         set_(self, "y", _readonly(ys))
 
+    def __reduce__(self):
+        # Rebuild from the three defining fields (keeps the arrays read-only after
+        # pickling, e.g. when a case is shipped to worker processes).
+        return (Section, (self.code, self.n, self.closed_te))
+
     # -- the defining functions ------------------------------------------------
     @property
     def _a4(self) -> float:
