@@ -330,8 +330,12 @@ def weld_vertices(vertices, faces, tolerance: float):
     np.minimum.at(first, label, np.arange(n))
     rep = first[label]
     f2 = rep[f]
-    used, f3 = np.unique(f2, return_inverse=True)
-    return v[used].copy(), f3.reshape(f.shape).astype(np.int64)
+    used = np.zeros(n, dtype=bool)
+    used[f2.ravel()] = True
+    if used.all():
+        return v.copy(), f2.astype(np.int64)
+    new_id = np.cumsum(used) - 1  # compact: drop vertices no face uses
+    return v[used].copy(), new_id[f2].astype(np.int64)
 
 
 # ---------------------------------------------------------------- load and save
@@ -417,11 +421,19 @@ def load_surface(path, *, scale: float = 1.0, weld_tolerance: float | None = Non
         raise InputError(f"{where} is empty (0 bytes); export the body again")
     trimesh = _trimesh()
     try:
-        loaded = trimesh.load(str(p), force="mesh", process=False)
+        if p.suffix.lower() == ".stl":  # arrays straight from the reader, no mesh object
+            from trimesh.exchange.stl import load_stl
+
+            with open(p, "rb") as fh:
+                loaded = load_stl(fh)
+            v, f = loaded.get("vertices", np.empty((0, 3))), loaded.get("faces", np.empty((0, 3)))
+        else:
+            mesh = trimesh.load(str(p), force="mesh", process=False)
+            v, f = getattr(mesh, "vertices", np.empty((0, 3))), getattr(mesh, "faces", np.empty((0, 3)))
     except Exception as exc:  # a file boundary: any parser failure is bad input
         raise InputError(f"{where} could not be read as {p.suffix[1:].upper()}: {exc}; check the file") from None
-    v = np.asarray(getattr(loaded, "vertices", np.empty((0, 3))), dtype=np.float64).reshape(-1, 3)
-    f = np.asarray(getattr(loaded, "faces", np.empty((0, 3))), dtype=np.int64).reshape(-1, 3)
+    v = np.asarray(v, dtype=np.float64).reshape(-1, 3)
+    f = np.asarray(f, dtype=np.int64).reshape(-1, 3)
     if len(f) == 0:
         raise InputError(f"{where} contains no triangles; export the body as a triangle surface")
     bad = ~np.all(np.isfinite(v), axis=1)
