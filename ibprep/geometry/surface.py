@@ -537,8 +537,8 @@ def surface_markers(mesh, spacing: float):
 
     Returns
     -------
-    points : (k, 3) float — metres; marker positions (area-weighted centroids
-        of surface patches, within about ``spacing^2 * curvature`` of the surface).
+    points : (k, 3) float — metres; marker positions, on the mesh surface (the
+        sample of each patch nearest to the patch's area-weighted centroid).
     normals : (k, 3) float — unit outward normals (area-weighted patch means).
     areas : (k,) float — m^2; patch areas, summing to the surface area up to round-off.
 
@@ -548,7 +548,8 @@ def surface_markers(mesh, spacing: float):
     ceil(longest edge / spacing)``; the sub-triangles are grouped into cubes of
     side ``spacing`` and, within a cube, by the dominant signed axis of their
     normal (so the two sides of a thin trailing edge never share a marker). Each
-    group is one marker. Areas are exact sums of sub-triangle areas.
+    group is one marker. Areas are exact sums of sub-triangle areas; normals are
+    the area-weighted mean of the group's face normals.
     """
     try:
         h = float(spacing)
@@ -590,10 +591,15 @@ def surface_markers(mesh, spacing: float):
     group = group.ravel()
     k = group.max() + 1
     a = np.bincount(group, weights=area, minlength=k)
-    p = np.column_stack([np.bincount(group, weights=area * pts[:, d], minlength=k) for d in range(3)]) / a[:, None]
+    centroid = np.column_stack([np.bincount(group, weights=area * pts[:, d], minlength=k) for d in range(3)]) / a[:, None]
     nsum = np.column_stack([np.bincount(group, weights=area * nrm[:, d], minlength=k) for d in range(3)])
     nsum /= np.linalg.norm(nsum, axis=1)[:, None]
-    return p, nsum, a
+    # The patch centroid sits off a curved surface; the marker is the patch's sample
+    # nearest to it, which lies on the mesh.
+    gap = np.einsum("ij,ij->i", pts - centroid[group], pts - centroid[group])
+    nearest = np.lexsort((gap, group))
+    first = np.concatenate([[True], group[nearest][1:] != group[nearest][:-1]])
+    return pts[nearest[first]], nsum, a
 
 
 # ---------------------------------------------------------------------- thickness
