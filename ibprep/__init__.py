@@ -1,12 +1,27 @@
 """ibprep — prepare and check moving-body cases for sharp-interface immersed-boundary solvers.
 
-The curated public names are listed in ``__all__``; see the README for a tour.
+geometry → motion → grid → per-step cell tagging → stencils → conditioning →
+a pre-flight verdict. The curated public names are listed in ``__all__``; see
+the README for a tour.
 """
 
 from __future__ import annotations
 
+from .case import Case, CheckLimits, load_case, parse_case
 from .classify import CellTag
 from .errors import IbprepError, IbprepWarning, InputError, MissingDependencyError
+from .geometry import (
+    Section,
+    SurfaceReport,
+    check_surface,
+    load_surface,
+    local_thickness,
+    make_wing,
+    naca4,
+    save_surface,
+    surface_markers,
+    thin_regions,
+)
 from .grid import Grid, NestedGrid, refine
 from .kinematics import (
     FlowNumbers,
@@ -19,11 +34,14 @@ from .kinematics import (
     flow_numbers,
     load_waveform_table,
 )
+from .sizing import propose_boxes, swept_envelope
 
 __version__ = "0.1.0.dev0"
 
 __all__ = [
+    "Case",
     "CellTag",
+    "CheckLimits",
     "FlowNumbers",
     "Grid",
     "IbprepError",
@@ -32,12 +50,26 @@ __all__ = [
     "MissingDependencyError",
     "Motion",
     "NestedGrid",
+    "Section",
     "Sine",
     "SmoothSquareWave",
+    "SurfaceReport",
     "Tabulated",
     "Waveform",
     "WaveformTable",
+    "check_surface",
     "flow_numbers",
+    "load_case",
+    "load_surface",
     "load_waveform_table",
+    "local_thickness",
+    "make_wing",
+    "naca4",
+    "parse_case",
+    "propose_boxes",
     "refine",
+    "save_surface",
+    "surface_markers",
+    "swept_envelope",
+    "thin_regions",
 ]
