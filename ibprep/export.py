@@ -108,7 +108,7 @@ def plot_motion(motion, chord: float, speed: float, path, *, title: str = "") ->
     ax[0].grid(alpha=0.3)
     ax[0].legend(loc="upper right", fontsize=8)
     ax[1].plot(t / T, th, color="tab:orange", label="pitch θ (nose-up +)")
-    ax[1].plot(t / T, al, color="tab:green", label="α_eff = θ − atan(ḣ/U)")
+    ax[1].plot(t / T, al, color="tab:green", label="α_eff = θ − atan((dh/dt)/U)")
     ax[1].set_ylabel("degrees")
     ax[1].set_xlabel("t / T")
     ax[1].grid(alpha=0.3)

@@ -133,22 +133,26 @@ def _verdict(checks) -> str:
     return STATUSES[worst]
 
 
+def _qty(value, unit) -> str:
+    return f"{value:.3g} {unit}" if unit else f"{value:.3g}"
+
+
 def _below(id_, value, warn, fail, unit, what, hint) -> Check:
     """A check where small is bad: fail below ``fail``, warn below ``warn``."""
     if value < fail:
-        return Check(id_, "fail", value, fail, unit, f"{what}: {value:.3g} {unit}, below the minimum {fail:g}", hint)
+        return Check(id_, "fail", value, fail, unit, f"{what}: {_qty(value, unit)}, below the minimum {fail:g}", hint)
     if value < warn:
-        return Check(id_, "warn", value, warn, unit, f"{what}: {value:.3g} {unit}, below the advised {warn:g}", hint)
-    return Check(id_, "pass", value, warn, unit, f"{what}: {value:.3g} {unit}")
+        return Check(id_, "warn", value, warn, unit, f"{what}: {_qty(value, unit)}, below the advised {warn:g}", hint)
+    return Check(id_, "pass", value, warn, unit, f"{what}: {_qty(value, unit)}")
 
 
 def _above(id_, value, warn, fail, unit, what, hint) -> Check:
     """A check where large is bad: fail above ``fail``, warn above ``warn``."""
     if value > fail:
-        return Check(id_, "fail", value, fail, unit, f"{what}: {value:.3g} {unit}, above the maximum {fail:g}", hint)
+        return Check(id_, "fail", value, fail, unit, f"{what}: {_qty(value, unit)}, above the maximum {fail:g}", hint)
     if value > warn:
-        return Check(id_, "warn", value, warn, unit, f"{what}: {value:.3g} {unit}, above the advised {warn:g}", hint)
-    return Check(id_, "pass", value, warn, unit, f"{what}: {value:.3g} {unit}")
+        return Check(id_, "warn", value, warn, unit, f"{what}: {_qty(value, unit)}, above the advised {warn:g}", hint)
+    return Check(id_, "pass", value, warn, unit, f"{what}: {_qty(value, unit)}")
 
 
 def _fmt_point(p) -> str:
@@ -311,7 +315,7 @@ def _time_checks(case: Case, env, h: float, figures: dict) -> list[Check]:
                        "travel_cells_per_step": travel, "max_body_speed_m_s": v}
     cfl_fix = (lim.cfl_warn * h / (u + v))
     return [
-        _above("time.cfl", cfl, lim.cfl_warn, lim.cfl_max, "-",
+        _above("time.cfl", cfl, lim.cfl_warn, lim.cfl_max, "",
                "convective Courant number (U + max body speed) dt / h",
                f"reduce the time step to {cfl_fix:.3g} s or less"),
         _above("time.travel", travel, lim.travel_warn, lim.travel_max, "cells",
@@ -466,11 +470,11 @@ def _stencil_checks(steps, limits: StencilLimits, figures: dict, h: float) -> li
     else:
         out.append(Check("stencil.ok", "pass", 0.0, 0, "stencils",
                          f"all {n_total} stencils over {len(steps)} checked steps are ok"))
-    out.append(_above("stencil.condition", wc.worst_condition, limits.max_condition, limits.max_condition, "-",
+    out.append(_above("stencil.condition", wc.worst_condition, limits.max_condition, limits.max_condition, "",
                       f"worst condition number (t = {wc.time:.4g} s at {_fmt_point(wc.worst_condition_at)})",
                       "refine near the body or widen the stencil support"))
     out.append(_above("stencil.weight_bound", ww.worst_weight_bound, limits.max_weight_bound,
-                      limits.max_weight_bound, "-",
+                      limits.max_weight_bound, "",
                       f"worst weight bound sum|w| (t = {ww.time:.4g} s at {_fmt_point(ww.worst_weight_bound_at)})",
                       "refine near the body; large weights amplify errors"))
     if n_fresh_bad:
