@@ -134,6 +134,25 @@ def _world(task: SweepTask, t: float):
     return transform_points(task.motion.pose(t), task.vertices), task.faces
 
 
+def _check_pair(task: SweepTask, grid: Grid, k: int, t: float, previous, prev_surface):
+    """Tags at t (incrementally from the previous pair when there is one), then at t + dt, then stencils."""
+    s0 = _world(task, t)
+    if previous is None:
+        state = classify(s0, grid, interface=task.interface)
+    else:
+        state = step_tags(previous, s0, grid, previous_surface=prev_surface, interface=task.interface)
+    s1 = _world(task, t + task.dt)
+    tr = step_tags(state, s1, grid, previous_surface=s0, interface=task.interface)
+    tags = tr.tags
+    if tr.fresh.size and task.interface == "fluid-side":
+        # Fresh cells need a reconstruction too: build their stencils with the interface cells.
+        tags = tags.copy()
+        tags.reshape(-1)[tr.fresh] = CellTag.INTERFACE
+    stencils = build_stencils(tags, grid, s1, bc=task.bc, interface=task.interface, limits=task.limits)
+    fresh_mask = np.isin(stencils.cells, tr.fresh)
+    return tr, _step_figures(task.first_index + k, t + task.dt, grid, tr, stencils, fresh_mask)
+
+
 def run_chunk(task: SweepTask) -> list[StepResult]:
     """Check every instant of a chunk in order, keeping the incremental tagging state.
 
@@ -157,22 +176,17 @@ def run_chunk(task: SweepTask) -> list[StepResult]:
         # An empty grid level is reported through StepResult.body_outside.
         warnings.simplefilter("ignore", IbprepWarning)
         for k, t in enumerate(np.asarray(task.instants, dtype=float)):
-            s0 = _world(task, t)
-            if previous is None:
-                state = classify(s0, grid, interface=task.interface)
-            else:
-                state = step_tags(previous, s0, grid, previous_surface=prev_surface, interface=task.interface)
-            s1 = _world(task, t + task.dt)
-            tr = step_tags(state, s1, grid, previous_surface=s0, interface=task.interface)
-            tags = tr.tags
-            if tr.fresh.size:
-                tags = tags.copy()
-                flat = tags.reshape(-1)
-                flat[tr.fresh] = CellTag.INTERFACE if task.interface == "fluid-side" else flat[tr.fresh]
-            stencils = build_stencils(tags, grid, s1, bc=task.bc, interface=task.interface, limits=task.limits)
-            fresh_mask = np.isin(stencils.cells, tr.fresh)
-            out.append(_step_figures(task.first_index + k, t + task.dt, grid, tr, stencils, fresh_mask))
-            previous, prev_surface = tr, s1
+            try:
+                tr, result = _check_pair(task, grid, k, float(t), previous, prev_surface)
+            except IbprepError:
+                raise
+            except Exception as exc:  # say which step pair broke; never a silent pass
+                raise IbprepError(
+                    f"the step pair at t = {t:.6g} s (instant {task.first_index + k}) failed: "
+                    f"{type(exc).__name__}: {exc}"
+                ) from exc
+            out.append(result)
+            previous, prev_surface = tr, _world(task, t + task.dt)
     return out
 
 

@@ -75,9 +75,31 @@ def _broken_sweep(**kw):
     return sweep(case.surface, broken, case.grid.finest, t, case.time.step, **kw)
 
 
-def test_a_failing_chunk_is_an_error_naming_the_step_serial():
-    with pytest.raises(RuntimeError, match="simulated worker failure"):
+def test_a_failing_step_is_an_error_naming_the_step_serial():
+    # Instants 0, 0.4, ..., 2.0 s; the pose fails beyond 1 s, first at the pair (1.2, 1.202).
+    with pytest.raises(IbprepError, match=r"step pair at t = 1\.2 s \(instant 3\) failed: .*simulated worker failure"):
         _broken_sweep()
+
+
+class _DyingMotion(Motion):
+    """A motion whose process dies outright past a given time: a killed worker."""
+
+    def pose(self, t):
+        if np.max(t) > 1.0:
+            import os
+
+            os._exit(3)
+        return super().pose(t)
+
+
+@pytest.mark.slow
+def test_a_killed_process_worker_is_an_error_not_a_pass():
+    case = parse_case(SMALL_CASE)
+    m = case.motion
+    dying = _DyingMotion(frequency=m.frequency, plunge_amplitude=m.plunge_amplitude,
+                         pitch_amplitude=m.pitch_amplitude, phase=m.phase, pivot=m.pivot)
+    with pytest.raises(IbprepError, match=r"sweep worker failed on the chunk starting at t = .* s"):
+        sweep(case.surface, dying, case.grid.finest, np.linspace(0, 2.0, 6), case.time.step, workers=2)
 
 
 @pytest.mark.slow
