@@ -1,6 +1,7 @@
 """The case file: a TOML description of one moving-body case, read into a validated :class:`Case`.
 
-A case file has the tables ``[body]``, ``[motion]``, ``[flow]``, ``[grid]`` (with
+A case is 3-D, or 2-D when the ``[grid]`` bounds have two components (the
+body is then a NACA section in the x–y plane). A case file has the tables ``[body]``, ``[motion]``, ``[flow]``, ``[grid]`` (with
 ``[[grid.refine]]`` boxes), ``[time]`` and the optional ``[checks]`` and
 ``[sizing]``. Units are SI; angles are degrees only in keys ending ``_deg``.
 Every problem is an :class:`~ibprep.errors.InputError` that names the key
@@ -89,8 +90,8 @@ KEYS: dict[str, dict[str, _Key]] = {
         "viscosity": _k("float", "m^2/s", required=True, minimum=0.0, strict=True, doc="kinematic viscosity"),
     },
     "grid": {
-        "lower": _k("vec3", "m", required=True, doc="domain corner"),
-        "upper": _k("vec3", "m", required=True, doc="opposite domain corner"),
+        "lower": _k("bounds", "m", required=True, doc="domain corner: [x, y, z], or [x, y] for a 2-D case"),
+        "upper": _k("bounds", "m", required=True, doc="opposite domain corner"),
         "spacing": _k("float", "m", required=True, minimum=0.0, strict=True, doc="base cell size"),
         "refine": _k("boxes", "m", default=(), doc="nested boxes, each halving the spacing"),
     },
@@ -175,6 +176,8 @@ def _coerce(table: str, name: str, spec: _Key, value):
             raise InputError(f"{where} must be <= {spec.maximum:g}{unit}, got {value!r}")
         return value
     if spec.kind == "vec3":
+        return _vec3(where, value, sizes=(3,))
+    if spec.kind == "bounds":
         return _vec3(where, value)
     if spec.kind == "boxes":
         if not isinstance(value, list):
@@ -196,11 +199,12 @@ def _coerce(table: str, name: str, spec: _Key, value):
     raise AssertionError(spec.kind)  # pragma: no cover - the key table is ours
 
 
-def _vec3(where: str, value) -> tuple[float, ...]:
-    if not isinstance(value, list) or len(value) not in (2, 3) or any(
+def _vec3(where: str, value, sizes=(2, 3)) -> tuple[float, ...]:
+    if not isinstance(value, list) or len(value) not in sizes or any(
         isinstance(v, bool) or not isinstance(v, (int, float)) for v in value
     ):
-        raise InputError(f"{where} must be [x, y, z] in metres (or [x, y] for 2-D), got {value!r}")
+        tail = " (or [x, y] for a 2-D case)" if 2 in sizes else ""
+        raise InputError(f"{where} must be [x, y, z] in metres{tail}, got {value!r}")
     out = tuple(float(v) for v in value)
     if not all(math.isfinite(v) for v in out):
         raise InputError(f"{where} must be finite, got {value!r}")
@@ -254,6 +258,7 @@ class BodySpec:
     closed_te: bool = True
     centred: bool = False
     faces: int = 20000
+    planar: bool = False
 
 
 @dataclass(frozen=True)
@@ -373,14 +378,31 @@ class Case:
         """Solver steps in one period (rounded to the nearest whole step)."""
         return max(1, int(round(self.motion.period / self.time.step)))
 
+    @property
+    def ndim(self) -> int:
+        """2 for a section in a 2-D grid, 3 otherwise."""
+        return self.grid.base.ndim
+
     @cached_property
     def surface(self):
-        """The body surface in the body frame (a watertight ``trimesh.Trimesh``), built once."""
+        """The body surface in the body frame (a watertight ``trimesh.Trimesh``), built once.
+
+        In a 2-D case the section (scaled by the chord) is extruded along z into a
+        prism symmetric about z = 0, whose cut by the plane z = 0 is the section:
+        rigid motion in the x–y plane keeps it so.
+        """
         from .geometry import load_surface, make_wing, naca4
 
         b = self.body
         if b.surface is not None:
             return load_surface(b.surface, scale=b.scale)
+        if b.planar:
+            from .geometry.surface import mesh_from_arrays
+            from .triangles import extrude_loops
+
+            sec = naca4(b.section, closed_te=b.closed_te)
+            loop = np.column_stack([np.asarray(sec.x), np.asarray(sec.y)]) * b.chord
+            return mesh_from_arrays(*extrude_loops([loop]))
         sec = naca4(b.section, closed_te=b.closed_te)
         return make_wing(sec, b.chord, b.span, taper=b.taper, sweep=b.sweep, twist=b.twist,
                          tips=b.tips, centred=b.centred, faces=b.faces)
@@ -400,7 +422,7 @@ class Case:
             v = np.asarray(self.surface.vertices)
             i = int(np.argmax(v[:, 0]))
             return tuple(float(c) for c in v[i])
-        z = 0.0 if b.centred else 0.5 * (b.span or 0.0)
+        z = 0.0 if (b.centred or b.planar) else 0.5 * (b.span or 0.0)
         return (b.chord, 0.0, z)
 
 
@@ -408,6 +430,15 @@ def _build(tables: dict[str, dict[str, Any]], base: Path | None) -> Case:
     from .kinematics import Motion, SmoothSquareWave, load_waveform_table
 
     b = tables["body"]
+    planar = len(tables["grid"]["lower"]) == 2
+    if planar:
+        if b["surface"] is not None:
+            raise InputError("[body] surface: a 2-D case (two-component [grid] bounds) takes a NACA section, not a file")
+        if b["span"] is not None:
+            raise InputError("[body] span has no meaning in a 2-D case (two-component [grid] bounds); remove it")
+        m = tables["motion"]
+        if m["roll_amplitude_deg"] != 0.0:
+            raise InputError("[motion] roll_amplitude_deg: a flapping stroke leaves the plane; a 2-D case cannot have one")
     if (b["section"] is None) == (b["surface"] is None):
         raise InputError("[body] give exactly one of section (a NACA code) or surface (a file)")
     surface = None
@@ -418,7 +449,7 @@ def _build(tables: dict[str, dict[str, Any]], base: Path | None) -> Case:
         if not surface.is_file():
             raise InputError(f"[body] surface: file {str(surface)!r} not found; the path is relative to the case file")
     else:
-        if b["span"] is None:
+        if b["span"] is None and not planar:
             raise InputError("[body] span is missing: a wing built from a section needs its span in metres")
         from .geometry import naca4
 
@@ -426,7 +457,7 @@ def _build(tables: dict[str, dict[str, Any]], base: Path | None) -> Case:
     body = BodySpec(
         chord=b["chord"], section=b["section"], surface=surface, scale=b["scale"], span=b["span"],
         tips=b["tips"], taper=b["taper"], sweep=math.radians(b["sweep_deg"]), twist=math.radians(b["twist_deg"]),
-        closed_te=b["closed_te"], centred=b["centred"], faces=b["faces"],
+        closed_te=b["closed_te"], centred=b["centred"], faces=b["faces"], planar=planar,
     )
 
     m = tables["motion"]

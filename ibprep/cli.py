@@ -266,8 +266,11 @@ def _run_export(args) -> int:
     T = case.motion.period
     times = np.asarray(args.at, float) if args.at else np.arange(args.count) * T / args.count
     env = swept_envelope(case.surface, case.motion, case.grid.finest_spacing)
-    level = case.grid.level_containing(env.lower, env.upper)
+    nd = case.ndim
+    level = case.grid.level_containing(env.lower[:nd], env.upper[:nd])
     grid = case.grid.levels[max(level, 0)]
+    if nd == 2 and "markers" in what:
+        raise InputError("--what markers: surface markers are for 3-D bodies; leave markers out in a 2-D case")
     written = []
     series = []
     mesh = case.surface
@@ -281,7 +284,7 @@ def _run_export(args) -> int:
         if what & {"tags", "stencils"}:
             tags = classify((v, mesh.faces), grid)
             m = args.margin * case.chord
-            region = grid.index_box(v.min(axis=0) - m, v.max(axis=0) + m)
+            region = grid.index_box(v.min(axis=0)[:nd] - m, v.max(axis=0)[:nd] + m)
             if "stencils" in what:
                 st = build_stencils(tags, grid, (v, mesh.faces))
                 written.append(st.save(out / f"stencils_{stem}.npz"))
@@ -343,7 +346,8 @@ def _run_demo(args) -> int:
         v = transform_points(case.motion.pose(worst.time), case.surface.vertices)
         tags = classify((v, case.surface.faces), grid)
         m = 0.1 * case.chord
-        region = grid.index_box(np.min(v, axis=0) - m, np.max(v, axis=0) + m)
+        nd = case.ndim
+        region = grid.index_box(np.min(v, axis=0)[:nd] - m, np.max(v, axis=0)[:nd] + m)
         files.append(write_tags_vtu(tags, grid, out / "tags_worst_step.vtu", region=region))
     print(format_report(report))
     print("")

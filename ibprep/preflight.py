@@ -208,11 +208,12 @@ def _surface_checks(case: Case, h_body: float, figures: dict) -> list[Check]:
 def _domain_checks(case: Case, env, figures: dict) -> list[Check]:
     g = case.grid.base
     c = case.chord
+    nd = g.ndim
     lo, hi = np.asarray(g.lower), np.asarray(g.upper)
     reach = _STENCIL_REACH_CELLS * case.grid.finest_spacing
-    gap_lo = env.lower - lo
-    gap_hi = hi - env.upper
-    figures["envelope"] = {"lower_m": env.lower, "upper_m": env.upper}
+    gap_lo = env.lower[:nd] - lo
+    gap_hi = hi - env.upper[:nd]
+    figures["envelope"] = {"lower_m": env.lower[:nd], "upper_m": env.upper[:nd]}
     out = []
     worst = float(min(gap_lo.min(), gap_hi.min()))
     if worst < reach:
@@ -235,9 +236,11 @@ def _domain_checks(case: Case, env, figures: dict) -> list[Check]:
         ("domain.downstream", gap_hi[0] / c, lim.downstream_chords, "clearance behind the swept body", "upper x"),
         ("domain.lateral", min(gap_lo[1], gap_hi[1]) / c, lim.lateral_chords, "clearance above/below the swept body",
          "lower/upper y"),
-        ("domain.spanwise", min(gap_lo[2], gap_hi[2]) / c, lim.spanwise_chords, "clearance beyond the body's ends",
-         "lower/upper z"),
+        ("domain.spanwise", min(gap_lo[2], gap_hi[2]) / c if nd == 3 else None, lim.spanwise_chords,
+         "clearance beyond the body's ends", "lower/upper z"),
     ):
+        if value is None:  # 2-D: no span
+            continue
         if value < limit:
             out.append(Check(id_, "warn", value, limit, "chords",
                              f"{what}: {value:.3g} chords, below the common-practice {limit:g}",
@@ -248,7 +251,8 @@ def _domain_checks(case: Case, env, figures: dict) -> list[Check]:
 
 
 def _body_level(case: Case, env) -> int:
-    lvl = case.grid.level_containing(env.lower, env.upper)
+    nd = case.grid.base.ndim
+    lvl = case.grid.level_containing(env.lower[:nd], env.upper[:nd])
     return lvl if lvl >= 0 else 0
 
 
@@ -274,8 +278,9 @@ def _refine_checks(case: Case, env, figures: dict) -> list[Check]:
     fin = ng.finest
     c = case.chord
     reach = _STENCIL_REACH_CELLS * fin.spacing
+    nd = fin.ndim
     lo, hi = np.asarray(fin.lower), np.asarray(fin.upper)
-    gap = np.minimum(env.lower - lo, hi - env.upper)
+    gap = np.minimum(env.lower[:nd] - lo, hi - env.upper[:nd])
     out = []
     if len(ng.levels) == 1:
         out.append(Check("refine.envelope", "pass", None, None, "", "no refinement boxes: the base grid holds the body"))

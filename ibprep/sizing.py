@@ -205,7 +205,8 @@ def propose_boxes(base: Grid, envelope: Envelope, chord: float, target_spacing: 
 
     Parameters
     ----------
-    base : Grid — the domain and its base spacing (3-D).
+    base : Grid — the domain and its base spacing (2-D or 3-D; a 2-D grid uses the
+        envelope's x and y).
     envelope : Envelope — from :func:`swept_envelope`.
     chord : float — metres; margins are in chords.
     target_spacing : float — metres; the finest spacing must not exceed it.
@@ -217,12 +218,11 @@ def propose_boxes(base: Grid, envelope: Envelope, chord: float, target_spacing: 
     -------
     SizingResult
     """
-    if base.ndim != 3:
-        raise InputError("refinement boxes are proposed for 3-D grids")
+    nd = base.ndim
     levels = max(0, int(math.ceil(math.log2(base.spacing / target_spacing) - 1e-9)))
     lo_dom, hi_dom = np.asarray(base.lower), np.asarray(base.upper)
-    finest_lo = envelope.lower - chord * np.array([upstream, lateral, lateral])
-    finest_hi = envelope.upper + chord * np.array([wake, lateral, lateral])
+    finest_lo = envelope.lower[:nd] - chord * np.array([upstream, lateral, lateral])[:nd]
+    finest_hi = envelope.upper[:nd] + chord * np.array([wake, lateral, lateral])[:nd]
     boxes = []
     lo, hi = finest_lo, finest_hi
     for lvl in range(levels, 0, -1):

@@ -52,3 +52,48 @@ lateral_chords = 0.5
 spanwise_chords = 0.5
 thin_fraction_max = 0.95
 """
+
+
+#: A 2-D section case: a NACA 0012 section plunging and pitching in a 2-D grid. Invented numbers.
+SMALL_CASE_2D = """
+[case]
+title = "small 2-D section (invented)"
+
+[body]
+section = "0012"
+chord = 0.06
+
+[motion]
+frequency = 0.25
+plunge_amplitude = 0.03
+pitch_amplitude_deg = 30
+phase_deg = 90
+pivot = [0.02, 0.0, 0.0]
+
+[flow]
+speed = 0.1
+viscosity = 6e-6
+
+[grid]
+lower = [-0.12, -0.12]
+upper = [0.36, 0.12]
+spacing = 0.004
+[[grid.refine]]
+lower = [-0.03, -0.06]
+upper = [0.15, 0.06]
+[[grid.refine]]
+lower = [-0.02, -0.05]
+upper = [0.14, 0.05]
+
+[time]
+step = 0.002
+cycles = 1
+
+[checks]
+phases = 8
+stokes_cells_warn = 2
+stokes_cells_min = 1
+upstream_chords = 1
+downstream_chords = 1
+lateral_chords = 0.5
+"""

@@ -4,7 +4,7 @@ import json
 
 import pytest
 
-from cases import SMALL_CASE
+from cases import SMALL_CASE, SMALL_CASE_2D
 from ibprep import parse_case, preflight
 
 
@@ -75,3 +75,24 @@ def test_domain_the_plunging_body_leaves_fails_domain():
     assert checks["domain.inside"].status == "fail"
     assert "face" in checks["domain.inside"].message
     assert rep.verdict == "fail"
+
+
+def test_two_dimensional_section_case():
+    case = parse_case(SMALL_CASE_2D)
+    assert case.ndim == 2 and case.grid.finest.shape == (64, 40)
+    rep = preflight(case)
+    checks = _by_id(rep)
+    assert "domain.spanwise" not in checks  # no span in 2-D
+    assert checks["stencil.ok"].status == "pass", checks["stencil.ok"].message
+    assert checks["resolution.chord"].value == pytest.approx(60.0)  # c / h = 0.06 / 0.001
+    assert rep.verdict in ("pass", "warn")
+    # The same section with a step far too large fails the time family.
+    bad = preflight(parse_case(SMALL_CASE_2D.replace("step = 0.002", "step = 0.05")))
+    assert _by_id(bad)["time.travel"].status == "fail"
+
+
+def test_two_dimensional_case_rejects_three_dimensional_keys():
+    from ibprep import InputError
+
+    with pytest.raises(InputError, match=r"\[body\] span has no meaning in a 2-D case"):
+        parse_case(SMALL_CASE_2D.replace("chord = 0.06", "chord = 0.06\nspan = 0.1"))
