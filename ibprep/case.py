@@ -135,6 +135,9 @@ KEYS: dict[str, dict[str, _Key]] = {
     },
 }
 
+# Half-depth of the prism a 2-D section is extruded into, in chords.
+_PRISM_HALF_DEPTH = 0.25
+
 _RESERVED_TABLES = {"bodies": "several bodies in one case are not supported yet; describe one body under [body]"}
 
 
@@ -389,7 +392,7 @@ class Case:
 
         In a 2-D case the section (scaled by the chord) is extruded along z into a
         prism symmetric about z = 0, whose cut by the plane z = 0 is the section:
-        rigid motion in the x–y plane keeps it so.
+        rigid motion in the x–y plane keeps it so. The prism is half a chord deep.
         """
         from .geometry import load_surface, make_wing, naca4
 
@@ -402,7 +405,9 @@ class Case:
 
             sec = naca4(b.section, closed_te=b.closed_te)
             loop = np.column_stack([np.asarray(sec.x), np.asarray(sec.y)]) * b.chord
-            return mesh_from_arrays(*extrude_loops([loop]))
+            # Half a chord deep: caps far from z = 0 for every stencil and closest-point
+            # query near the section, yet a small surface for the thickness markers.
+            return mesh_from_arrays(*extrude_loops([loop], half_depth=_PRISM_HALF_DEPTH * b.chord))
         sec = naca4(b.section, closed_te=b.closed_te)
         return make_wing(sec, b.chord, b.span, taper=b.taper, sweep=b.sweep, twist=b.twist,
                          tips=b.tips, centred=b.centred, faces=b.faces)

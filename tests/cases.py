@@ -91,6 +91,8 @@ cycles = 1
 
 [checks]
 phases = 8
+le_radius_cells_warn = 0.8
+le_radius_cells_min = 0.5
 stokes_cells_warn = 2
 stokes_cells_min = 1
 upstream_chords = 1

@@ -79,7 +79,7 @@ def test_domain_the_plunging_body_leaves_fails_domain():
 
 def test_two_dimensional_section_case():
     case = parse_case(SMALL_CASE_2D)
-    assert case.ndim == 2 and case.grid.finest.shape == (64, 40)
+    assert case.ndim == 2 and case.grid.finest.shape == (160, 100)
     rep = preflight(case)
     checks = _by_id(rep)
     assert "domain.spanwise" not in checks  # no span in 2-D
