@@ -28,7 +28,7 @@ import numpy as np
 from .errors import InputError
 from .grid import Grid, NestedGrid, refine
 
-__all__ = ["Case", "BodySpec", "FlowSpec", "TimeSpec", "CheckLimits", "SizingSpec", "KEYS", "load_case", "parse_case"]
+__all__ = ["Case", "BodyCase", "BodySpec", "FlowSpec", "TimeSpec", "CheckLimits", "SizingSpec", "KEYS", "load_case", "parse_case"]
 
 
 # --------------------------------------------------------------------------- key table
@@ -55,6 +55,9 @@ KEYS: dict[str, dict[str, _Key]] = {
         "title": _k("str", default="", doc="a name for the case, shown in reports"),
     },
     "body": {
+        "name": _k("str", default="", doc="a name for the body, used in messages (several bodies)"),
+        "offset": _k("vec3", "m", default=(0.0, 0.0, 0.0),
+                     doc="where the body frame's origin sits in the world at rest (e.g. the second foil of a pair)"),
         "section": _k("str", doc='NACA 4-digit code, e.g. "0015"; or give surface'),
         "surface": _k("str", doc="path of a closed STL/OBJ/PLY body, relative to the case file"),
         "scale": _k("float", "-", default=1.0, minimum=0.0, strict=True, doc="factor applied to surface coordinates"),
@@ -120,6 +123,8 @@ KEYS: dict[str, dict[str, _Key]] = {
         "downstream_chords": _k("float", "c", default=5.0, minimum=0.0, doc="clearance behind it: warn below"),
         "lateral_chords": _k("float", "c", default=2.0, minimum=0.0, doc="clearance above and below: warn below"),
         "spanwise_chords": _k("float", "c", default=1.0, minimum=0.0, doc="clearance beyond the ends: warn below"),
+        "gap_cells_warn": _k("float", "cells", default=4.0, minimum=0.0, doc="narrowest gap between bodies: warn below"),
+        "gap_cells_min": _k("float", "cells", default=2.0, minimum=0.0, doc="narrowest gap between bodies: fail below"),
         "thin_fraction_max": _k("float", "-", default=0.10, minimum=0.0, maximum=1.0,
                                 doc="area fraction thinner than two cells: fail above"),
         "condition_max": _k("float", "-", minimum=1.0, doc="stencil condition number: fail above (default: the stencil limit)"),
@@ -138,7 +143,9 @@ KEYS: dict[str, dict[str, _Key]] = {
 # Half-depth of the prism a 2-D section is extruded into, in chords.
 _PRISM_HALF_DEPTH = 0.25
 
-_RESERVED_TABLES = {"bodies": "several bodies in one case are not supported yet; describe one body under [body]"}
+#: Tables that describe one body; with several bodies each ``[[bodies]]`` entry takes the
+#: ``[body]`` keys and has its own ``motion`` table.
+_BODY_TABLES = ("body", "motion")
 
 
 def _suggest(name: str, options) -> str:
@@ -214,34 +221,62 @@ def _vec3(where: str, value, sizes=(2, 3)) -> tuple[float, ...]:
     return out
 
 
-def _read_tables(data: dict) -> dict[str, dict[str, Any]]:
-    for name, why in _RESERVED_TABLES.items():
-        if name in data:
-            raise InputError(f"[[{name}]]: {why}")
-    unknown = set(data) - set(KEYS)
+def _read_table(label: str, given, keys: dict[str, _Key]) -> dict[str, Any]:
+    """Validated values of one table: known keys only, types and ranges, defaults filled in."""
+    if not isinstance(given, dict):
+        raise InputError(f"[{label}] must be a table, got {given!r}")
+    unknown = set(given) - set(keys)
     if unknown:
         bad = sorted(unknown)[0]
-        raise InputError(f"unknown table [{bad}]{_suggest(bad, KEYS)}")
-    out: dict[str, dict[str, Any]] = {}
-    for table, keys in KEYS.items():
-        given = data.get(table, {})
-        if not isinstance(given, dict):
-            raise InputError(f"[{table}] must be a table, got {given!r}")
-        unknown = set(given) - set(keys)
-        if unknown:
-            bad = sorted(unknown)[0]
-            raise InputError(f"[{table}] unknown key {bad!r}{_suggest(bad, keys)}")
-        values = {}
-        for name, spec in keys.items():
-            if name in given:
-                values[name] = _coerce(table, name, spec, given[name])
-            elif spec.required:
-                unit = f" ({spec.unit})" if spec.unit not in ("", "-") else ""
-                raise InputError(f"[{table}] {name} is missing: give the {spec.doc}{unit}")
-            else:
-                values[name] = spec.default
-        out[table] = values
-    return out
+        raise InputError(f"[{label}] unknown key {bad!r}{_suggest(bad, keys)}")
+    values = {}
+    for name, spec in keys.items():
+        if name in given:
+            values[name] = _coerce(label, name, spec, given[name])
+        elif spec.required:
+            unit = f" ({spec.unit})" if spec.unit not in ("", "-") else ""
+            raise InputError(f"[{label}] {name} is missing: give the {spec.doc}{unit}")
+        else:
+            values[name] = spec.default
+    return values
+
+
+def _read_tables(data: dict) -> tuple[dict[str, dict[str, Any]], list[tuple[dict, dict]]]:
+    """The shared tables, and (body, motion) values for each body."""
+    known = set(KEYS) | {"bodies"}
+    unknown = set(data) - known
+    if unknown:
+        bad = sorted(unknown)[0]
+        raise InputError(f"unknown table [{bad}]{_suggest(bad, known)}")
+    out = {t: _read_table(t, data.get(t, {}), keys) for t, keys in KEYS.items() if t not in _BODY_TABLES}
+    if "bodies" in data:
+        if any(t in data for t in _BODY_TABLES):
+            raise InputError("give either one [body] with its [motion], or [[bodies]] entries each with a "
+                             "[bodies.motion] table, not both")
+        entries = data["bodies"]
+        if not isinstance(entries, list) or not entries:
+            raise InputError("[[bodies]] must be an array of tables, one per body")
+        bodies = []
+        for i, entry in enumerate(entries, start=1):
+            if not isinstance(entry, dict):
+                raise InputError(f"[[bodies]] entry {i} must be a table")
+            entry = dict(entry)
+            motion = entry.pop("motion", None)
+            label = f"[bodies] {i}"
+            if motion is None:
+                raise InputError(f"{label}: each body needs its own [bodies.motion] table")
+            bodies.append((_read_table(f"bodies {i}", entry, KEYS["body"]),
+                           _read_table(f"bodies {i} motion", motion, KEYS["motion"])))
+        names = [b["name"] or f"body {i}" for i, (b, _) in enumerate(bodies, start=1)]
+        if len(set(names)) != len(names):
+            raise InputError(f"[[bodies]] names must differ, got {names}")
+        for (b, _), name in zip(bodies, names):
+            b["name"] = name
+    else:
+        bodies = [(_read_table("body", data.get("body", {}), KEYS["body"]),
+                   _read_table("motion", data.get("motion", {}), KEYS["motion"]))]
+        bodies[0][0]["name"] = bodies[0][0]["name"] or "body"
+    return out, bodies
 
 
 # --------------------------------------------------------------------------- specs
@@ -262,6 +297,7 @@ class BodySpec:
     centred: bool = False
     faces: int = 20000
     planar: bool = False
+    offset: tuple = (0.0, 0.0, 0.0)
 
 
 @dataclass(frozen=True)
@@ -292,7 +328,8 @@ class CheckLimits:
     across the leading-edge radius warn 2 / fail 1 (common practice, no single
     source); domain clearances in chords warn below 2 upstream, 5 downstream,
     2 laterally, 1 spanwise (common practice, no single source); thin area fraction
-    fail above 10 %. ``condition_max`` and ``weight_bound_max`` default to the
+    fail above 10 %; the narrowest gap between bodies warn below 4 cells, fail below 2
+    (a gap under about two cells starves the stencils). ``condition_max`` and ``weight_bound_max`` default to the
     stencil builder's own limits (None here).
     """
 
@@ -315,6 +352,8 @@ class CheckLimits:
     lateral_chords: float = 2.0
     spanwise_chords: float = 1.0
     thin_fraction_max: float = 0.10
+    gap_cells_warn: float = 4.0
+    gap_cells_min: float = 2.0
     condition_max: float | None = None
     weight_bound_max: float | None = None
 
@@ -326,6 +365,7 @@ class CheckLimits:
             ("le_radius_cells_warn", "le_radius_cells_min", "below"),
             ("bl_cells_warn", "bl_cells_min", "below"),
             ("stokes_cells_warn", "stokes_cells_min", "below"),
+            ("gap_cells_warn", "gap_cells_min", "below"),
         ):
             w, f = getattr(self, warn), getattr(self, fail)
             if (sense == "above" and w > f) or (sense == "below" and w < f):
@@ -370,6 +410,7 @@ class Case:
     checks: CheckLimits = field(default_factory=CheckLimits)
     sizing: SizingSpec = field(default_factory=SizingSpec)
     path: Path | None = None
+    bodies: tuple = ()
 
     @property
     def chord(self) -> float:
@@ -386,17 +427,80 @@ class Case:
         """2 for a section in a 2-D grid, 3 otherwise."""
         return self.grid.base.ndim
 
+    @property
+    def surface(self):
+        """The first body's surface, placed (a watertight ``trimesh.Trimesh``); see :class:`BodyCase`."""
+        return self.bodies[0].surface
+
+    @property
+    def section(self):
+        """The first body's NACA section, or None for a surface file."""
+        return self.bodies[0].section
+
+    @property
+    def te_point(self) -> tuple[float, float, float]:
+        """A trailing-edge point of the first body, placed frame, metres."""
+        return self.bodies[0].te_point
+
+    @property
+    def surfaces(self) -> tuple:
+        """Every body's placed surface."""
+        return tuple(b.surface for b in self.bodies)
+
+    @property
+    def motions(self) -> tuple:
+        """Every body's motion (pivots in the placed frame)."""
+        return tuple(b.motion for b in self.bodies)
+
+    def world_surface(self, t: float) -> tuple[np.ndarray, np.ndarray]:
+        """All bodies at time ``t`` as one surface: vertices (n, 3) float, metres, world frame; faces (m, 3) int."""
+        from .triangles import transform_points
+
+        verts, faces, offset = [], [], 0
+        for b in self.bodies:
+            mesh = b.surface
+            verts.append(transform_points(b.motion.pose(float(t)), mesh.vertices))
+            faces.append(np.asarray(mesh.faces) + offset)
+            offset += len(mesh.vertices)
+        return np.vstack(verts), np.vstack(faces)
+
+
+@dataclass(frozen=True)
+class BodyCase:
+    """One body of a case: its name, what it is, and how it moves.
+
+    The body frame is *placed*: the body's own frame (chord along +x from the leading
+    edge at the origin) moved by ``spec.offset``; the motion's pivot and stroke root
+    are moved with it, so ``motion.pose(t)`` maps placed points to the world.
+    """
+
+    name: str
+    spec: BodySpec
+    motion: Any
+
+    @property
+    def chord(self) -> float:
+        """Reference chord, metres."""
+        return self.spec.chord
+
     @cached_property
     def surface(self):
-        """The body surface in the body frame (a watertight ``trimesh.Trimesh``), built once.
+        """The body surface in the placed frame (a watertight ``trimesh.Trimesh``), built once.
 
         In a 2-D case the section (scaled by the chord) is extruded along z into a
         prism symmetric about z = 0, whose cut by the plane z = 0 is the section:
         rigid motion in the x–y plane keeps it so. The prism is half a chord deep.
         """
+        mesh = self._body_frame_surface()
+        if any(self.spec.offset):
+            mesh = mesh.copy()
+            mesh.vertices = np.asarray(mesh.vertices) + np.asarray(self.spec.offset)
+        return mesh
+
+    def _body_frame_surface(self):
         from .geometry import load_surface, make_wing, naca4
 
-        b = self.body
+        b = self.spec
         if b.surface is not None:
             return load_surface(b.surface, scale=b.scale)
         if b.planar:
@@ -414,76 +518,93 @@ class Case:
 
     @cached_property
     def section(self):
-        """The NACA section of a generated wing, or None for a surface file."""
+        """The NACA section of a generated body, or None for a surface file."""
         from .geometry import naca4
 
-        return naca4(self.body.section, closed_te=self.body.closed_te) if self.body.section else None
+        return naca4(self.spec.section, closed_te=self.spec.closed_te) if self.spec.section else None
 
     @property
     def te_point(self) -> tuple[float, float, float]:
-        """A trailing-edge point in the body frame (mid-span of a generated wing), metres."""
-        b = self.body
+        """A trailing-edge point (mid-span of a generated wing), placed frame, metres."""
+        b = self.spec
         if b.section is None:
             v = np.asarray(self.surface.vertices)
             i = int(np.argmax(v[:, 0]))
             return tuple(float(c) for c in v[i])
         z = 0.0 if (b.centred or b.planar) else 0.5 * (b.span or 0.0)
-        return (b.chord, 0.0, z)
+        return tuple(float(c) for c in np.array([b.chord, 0.0, z]) + np.asarray(b.offset))
 
 
-def _build(tables: dict[str, dict[str, Any]], base: Path | None) -> Case:
-    from .kinematics import Motion, SmoothSquareWave, load_waveform_table
+def _resolve(path: str, base: Path | None, where: str) -> Path:
+    p = Path(path)
+    if not p.is_absolute() and base is not None:
+        p = base / p
+    if not p.is_file():
+        raise InputError(f"{where}: file {str(p)!r} not found; the path is relative to the case file")
+    return p
 
-    b = tables["body"]
-    planar = len(tables["grid"]["lower"]) == 2
+
+def _body_spec(b: dict, planar: bool, base: Path | None, label: str) -> BodySpec:
     if planar:
         if b["surface"] is not None:
-            raise InputError("[body] surface: a 2-D case (two-component [grid] bounds) takes a NACA section, not a file")
+            raise InputError(f"[{label}] surface: a 2-D case (two-component [grid] bounds) takes a NACA section, not a file")
         if b["span"] is not None:
-            raise InputError("[body] span has no meaning in a 2-D case (two-component [grid] bounds); remove it")
-        m = tables["motion"]
-        if m["roll_amplitude_deg"] != 0.0:
-            raise InputError("[motion] roll_amplitude_deg: a flapping stroke leaves the plane; a 2-D case cannot have one")
+            raise InputError(f"[{label}] span has no meaning in a 2-D case (two-component [grid] bounds); remove it")
     if (b["section"] is None) == (b["surface"] is None):
-        raise InputError("[body] give exactly one of section (a NACA code) or surface (a file)")
+        raise InputError(f"[{label}] give exactly one of section (a NACA code) or surface (a file)")
     surface = None
     if b["surface"] is not None:
-        surface = Path(b["surface"])
-        if not surface.is_absolute() and base is not None:
-            surface = base / surface
-        if not surface.is_file():
-            raise InputError(f"[body] surface: file {str(surface)!r} not found; the path is relative to the case file")
+        surface = _resolve(b["surface"], base, f"[{label}] surface")
     else:
         if b["span"] is None and not planar:
-            raise InputError("[body] span is missing: a wing built from a section needs its span in metres")
+            raise InputError(f"[{label}] span is missing: a wing built from a section needs its span in metres")
         from .geometry import naca4
 
-        naca4(b["section"])  # validate the code now, naming the key on failure
-    body = BodySpec(
+        try:
+            naca4(b["section"])  # validate the code now, naming the key on failure
+        except InputError as exc:
+            raise InputError(f"[{label}] section: {exc}") from None
+    return BodySpec(
         chord=b["chord"], section=b["section"], surface=surface, scale=b["scale"], span=b["span"],
         tips=b["tips"], taper=b["taper"], sweep=math.radians(b["sweep_deg"]), twist=math.radians(b["twist_deg"]),
-        closed_te=b["closed_te"], centred=b["centred"], faces=b["faces"], planar=planar,
+        closed_te=b["closed_te"], centred=b["centred"], faces=b["faces"], planar=planar, offset=b["offset"],
     )
 
-    m = tables["motion"]
+
+def _motion(m: dict, offset, planar: bool, base: Path | None, label: str):
+    """The body's Motion, with pivot and stroke root moved by the body's offset (the placed frame)."""
+    from .kinematics import Motion, SmoothSquareWave, load_waveform_table
+
     if m["pitch_amplitude_deg"] >= 90.0:
-        raise InputError(f"[motion] pitch_amplitude_deg must be below 90, got {m['pitch_amplitude_deg']!r}")
+        raise InputError(f"[{label}] pitch_amplitude_deg must be below 90, got {m['pitch_amplitude_deg']!r}")
+    if planar and m["roll_amplitude_deg"] != 0.0:
+        raise InputError(f"[{label}] roll_amplitude_deg: a flapping stroke leaves the plane; a 2-D case cannot have one")
+    o = np.asarray(offset, dtype=float)
+    pivot = tuple(float(v) for v in np.asarray(m["pivot"]) + o)
     roll = dict(roll_amplitude=math.radians(m["roll_amplitude_deg"]), roll_phase=math.radians(m["roll_phase_deg"]),
-                roll_root=m["roll_root"])
+                roll_root=tuple(float(v) for v in np.asarray(m["roll_root"]) + o))
     if m["table"] is not None:
-        table_path = Path(m["table"])
-        if not table_path.is_absolute() and base is not None:
-            table_path = base / table_path
-        if not table_path.is_file():
-            raise InputError(f"[motion] table: file {str(table_path)!r} not found; the path is relative to the case file")
-        motion = Motion.from_table(load_waveform_table(table_path), pivot=m["pivot"], **roll)
-    else:
-        motion = Motion(
-            frequency=m["frequency"], plunge_amplitude=m["plunge_amplitude"],
-            pitch_amplitude=math.radians(m["pitch_amplitude_deg"]), phase=math.radians(m["phase_deg"]),
-            pivot=m["pivot"], plunge_waveform=SmoothSquareWave(m["plunge_sharpness"]),
-            pitch_waveform=SmoothSquareWave(m["pitch_sharpness"]), **roll,
-        )
+        table = load_waveform_table(_resolve(m["table"], base, f"[{label}] table"))
+        return Motion.from_table(table, pivot=pivot, **roll)
+    return Motion(
+        frequency=m["frequency"], plunge_amplitude=m["plunge_amplitude"],
+        pitch_amplitude=math.radians(m["pitch_amplitude_deg"]), phase=math.radians(m["phase_deg"]),
+        pivot=pivot, plunge_waveform=SmoothSquareWave(m["plunge_sharpness"]),
+        pitch_waveform=SmoothSquareWave(m["pitch_sharpness"]), **roll,
+    )
+
+
+def _build(tables: dict[str, dict[str, Any]], bodies_in: list, base: Path | None) -> Case:
+    planar = len(tables["grid"]["lower"]) == 2
+    several = len(bodies_in) > 1
+    bodies = []
+    for i, (b, m) in enumerate(bodies_in, start=1):
+        blabel, mlabel = (f"bodies {i}", f"bodies {i} motion") if several else ("body", "motion")
+        spec = _body_spec(b, planar, base, blabel)
+        bodies.append(BodyCase(name=b["name"], spec=spec, motion=_motion(m, spec.offset, planar, base, mlabel)))
+    periods = [bc.motion.period for bc in bodies]
+    if several and not np.allclose(periods, periods[0], rtol=1e-9):
+        raise InputError(f"[[bodies]] motions must share one period (frequency), got periods {periods} s")
 
     f = tables["flow"]
     flow = FlowSpec(speed=f["speed"], viscosity=f["viscosity"])
@@ -499,8 +620,8 @@ def _build(tables: dict[str, dict[str, Any]], base: Path | None) -> Case:
     time = TimeSpec(step=t["step"], cycles=t["cycles"])
     checks = CheckLimits(**tables["checks"])
     sizing = SizingSpec(**tables["sizing"])
-    return Case(title=tables["case"]["title"], body=body, motion=motion, flow=flow, grid=nested, time=time,
-                checks=checks, sizing=sizing, path=None)
+    return Case(title=tables["case"]["title"], body=bodies[0].spec, motion=bodies[0].motion, flow=flow,
+                grid=nested, time=time, checks=checks, sizing=sizing, path=None, bodies=tuple(bodies))
 
 
 def parse_case(source, *, base: str | Path | None = None) -> Case:
@@ -526,8 +647,8 @@ def parse_case(source, *, base: str | Path | None = None) -> Case:
         data = source
     else:
         raise InputError(f"a case is TOML text or a dict, got {type(source).__name__}")
-    tables = _read_tables(data)
-    return _build(tables, Path(base) if base is not None else None)
+    tables, bodies = _read_tables(data)
+    return _build(tables, bodies, Path(base) if base is not None else None)
 
 
 def load_case(path) -> Case:

@@ -158,7 +158,6 @@ def _write_plots(case, report, folder: Path) -> list[Path]:
     from .classify import classify
     from .export import plot_motion, plot_steps, plot_tags_slice
     from .sizing import swept_envelope
-    from .triangles import transform_points
 
     out = [plot_motion(case.motion, case.chord, case.flow.speed, folder / "motion.png", title=case.title)]
     if report.steps:
@@ -167,9 +166,9 @@ def _write_plots(case, report, folder: Path) -> list[Path]:
         worst = max(report.steps, key=lambda s: (s.n_bad, s.worst_condition))
         level = report.figures["resolution"]["level_at_body"]
         grid = case.grid.levels[level]
-        v = transform_points(case.motion.pose(worst.time), case.surface.vertices)
-        tags = classify((v, case.surface.faces), grid)
-        env = swept_envelope(case.surface, case.motion, case.grid.finest_spacing)
+        v, f = case.world_surface(worst.time)
+        tags = classify((v, f), grid)
+        env = swept_envelope(case.surfaces, case.motions, case.grid.finest_spacing)
         z = float(0.5 * (v[:, 2].min() + v[:, 2].max()))
         pad = 0.3 * case.chord
         zoom = ((v[:, 0].min() - pad, v[:, 1].min() - pad), (v[:, 0].max() + pad, v[:, 1].max() + pad))
@@ -196,7 +195,7 @@ def _run_size(args) -> int:
     target, rule, per_rule = required_spacing(lengths, case.checks)
     if case.sizing.target_spacing is not None:
         target, rule = case.sizing.target_spacing, "[sizing] target_spacing"
-    env = swept_envelope(case.surface, case.motion, target)
+    env = swept_envelope(case.surfaces, case.motions, target)
     s = case.sizing
     res = propose_boxes(case.grid.base, env, c, target, upstream=s.upstream, lateral=s.lateral, wake=s.wake,
                         buffer_cells=s.buffer_cells, rule=rule)
@@ -251,9 +250,9 @@ def _run_export(args) -> int:
     from .classify import classify
     from .export import write_markers_csv, write_tags_vtu, write_time_series
     from .geometry import save_surface, surface_markers
+    from .geometry.surface import mesh_from_arrays
     from .sizing import swept_envelope
     from .stencils import build_stencils
-    from .triangles import transform_points
 
     allowed = {"stl", "tags", "stencils", "markers"}
     what = {w.strip() for w in args.what.split(",") if w.strip()}
@@ -265,7 +264,7 @@ def _run_export(args) -> int:
     out = _folder(args.out)
     T = case.motion.period
     times = np.asarray(args.at, float) if args.at else np.arange(args.count) * T / args.count
-    env = swept_envelope(case.surface, case.motion, case.grid.finest_spacing)
+    env = swept_envelope(case.surfaces, case.motions, case.grid.finest_spacing)
     nd = case.ndim
     level = case.grid.level_containing(env.lower[:nd], env.upper[:nd])
     grid = case.grid.levels[max(level, 0)]
@@ -273,20 +272,17 @@ def _run_export(args) -> int:
         raise InputError("--what markers: surface markers are for 3-D bodies; leave markers out in a 2-D case")
     written = []
     series = []
-    mesh = case.surface
     for i, t in enumerate(times):
-        v = transform_points(case.motion.pose(float(t)), mesh.vertices)
+        v, faces = case.world_surface(float(t))
         stem = f"step{i:04d}"
         if "stl" in what:
-            moved = mesh.copy()
-            moved.vertices = v
-            written.append(save_surface(moved, out / f"body_{stem}.stl"))
+            written.append(save_surface(mesh_from_arrays(v, faces), out / f"body_{stem}.stl"))
         if what & {"tags", "stencils"}:
-            tags = classify((v, mesh.faces), grid)
+            tags = classify((v, faces), grid)
             m = args.margin * case.chord
             region = grid.index_box(v.min(axis=0)[:nd] - m, v.max(axis=0)[:nd] + m)
             if "stencils" in what:
-                st = build_stencils(tags, grid, (v, mesh.faces))
+                st = build_stencils(tags, grid, (v, faces))
                 written.append(st.save(out / f"stencils_{stem}.npz"))
                 cond = np.zeros(grid.shape)
                 cond.reshape(-1)[st.cells] = st.condition
@@ -300,8 +296,10 @@ def _run_export(args) -> int:
                 written.append(f)
                 series.append((float(t), f))
         if "markers" in what and i == 0:
-            p, n, a = surface_markers(mesh, grid.spacing)
-            written.append(write_markers_csv(p, n, a, out / "markers_body_frame.csv"))
+            for body in case.bodies:
+                p, n, a = surface_markers(body.surface, grid.spacing)
+                name = "" if len(case.bodies) == 1 else "_" + "".join(ch if ch.isalnum() else "-" for ch in body.name)
+                written.append(write_markers_csv(p, n, a, out / f"markers_body_frame{name}.csv"))
     if series:
         written.append(write_time_series(series, out / "tags.pvd"))
     print(f"ibprep export: wrote {len(written)} files into {out}")
@@ -332,19 +330,20 @@ def _run_demo(args) -> int:
     report = _preflight(case, args, preflight)
     files = [case_path, write_json_report(report, out / "report.json")]
     files += _write_plots(case, report, out)
-    files.append(save_surface(case.surface, out / "body.stl"))
+    from .geometry.surface import mesh_from_arrays
+
+    files.append(save_surface(mesh_from_arrays(*case.world_surface(0.0)), out / "body.stl"))
     # The tags of the worst checked step near the body, for ParaView.
     import numpy as np
 
     from .classify import classify
-    from .triangles import transform_points
 
     worst = max(report.steps, key=lambda s: (s.n_bad, s.worst_condition)) if report.steps else None
     if worst is not None:
         level = report.figures["resolution"]["level_at_body"]
         grid = case.grid.levels[level]
-        v = transform_points(case.motion.pose(worst.time), case.surface.vertices)
-        tags = classify((v, case.surface.faces), grid)
+        v, f = case.world_surface(worst.time)
+        tags = classify((v, f), grid)
         m = 0.1 * case.chord
         nd = case.ndim
         region = grid.index_box(np.min(v, axis=0)[:nd] - m, np.max(v, axis=0)[:nd] + m)

@@ -70,39 +70,51 @@ def _hull_points(vertices: np.ndarray) -> np.ndarray:
 
 
 def swept_envelope(surface, motion, spacing: float) -> Envelope:
-    """Bounding boxes of a rigidly moving body over one period.
+    """Bounding boxes of one or several rigidly moving bodies over one period.
 
     Parameters
     ----------
-    surface : trimesh.Trimesh or (vertices, faces) — the body in its body frame, metres.
-    motion : Motion — prescribed motion (``pose``, ``velocity``, ``period``).
+    surface : trimesh.Trimesh or (vertices, faces), or a sequence of them — each body
+        in its own (placed) body frame, metres.
+    motion : Motion, or a sequence of them (one per body, sharing one period).
     spacing : float — metres; the finest cell size that matters: samples are close
         enough that no point moves more than half of it between two of them.
 
     Returns
     -------
-    Envelope
+    Envelope — of all bodies together.
     """
     if not (isinstance(spacing, (int, float)) and math.isfinite(spacing) and spacing > 0):
         raise InputError(f"spacing must be a positive length in metres, got {spacing!r}")
-    v, _ = as_triangles(surface)
-    hull = _hull_points(v)
-    period = motion.period
+    surfaces, motions = _as_bodies(surface, motion)
+    hulls = [_hull_points(as_triangles(s)[0]) for s in surfaces]
+    period = max(m.period for m in motions)
     probe = np.linspace(0.0, period, 257)[:-1]
-    speed = float(np.linalg.norm(motion.velocity(hull, probe), axis=-1).max())
+    speed = max(float(np.linalg.norm(m.velocity(h, probe), axis=-1).max()) for h, m in zip(hulls, motions))
     # The sampled maximum can miss the true one slightly; 10 % headroom.
     n = max(_MIN_SAMPLES, int(math.ceil(1.1 * speed * period / (_SAMPLE_TRAVEL_CELLS * spacing))))
     times = np.linspace(0.0, period, n, endpoint=False)
-    lo = np.empty((n, 3))
-    hi = np.empty((n, 3))
-    block = max(1, 2_000_000 // max(1, len(hull)))
-    for s in range(0, n, block):
-        pts = motion.transform(hull, times[s : s + block])
-        lo[s : s + block] = pts.min(axis=1)
-        hi[s : s + block] = pts.max(axis=1)
+    lo = np.full((n, 3), np.inf)
+    hi = np.full((n, 3), -np.inf)
+    for hull, m in zip(hulls, motions):
+        block = max(1, 2_000_000 // max(1, len(hull)))
+        for s in range(0, n, block):
+            pts = m.transform(hull, times[s : s + block])
+            lo[s : s + block] = np.minimum(lo[s : s + block], pts.min(axis=1))
+            hi[s : s + block] = np.maximum(hi[s : s + block], pts.max(axis=1))
     pad = 1.1 * speed * period / n
     return Envelope(lower=lo.min(axis=0) - pad, upper=hi.max(axis=0) + pad, times=times,
                     box_lower=lo, box_upper=hi, max_speed=speed)
+
+
+def _as_bodies(surface, motion):
+    """(surfaces, motions) lists from one body or parallel sequences of them."""
+    if isinstance(motion, (list, tuple)):
+        surfaces, motions = list(surface), list(motion)
+        if len(surfaces) != len(motions) or not surfaces:
+            raise InputError(f"give one motion per body: {len(surfaces)} surfaces, {len(motions)} motions")
+        return surfaces, motions
+    return [surface], [motion]
 
 
 @dataclass(frozen=True)

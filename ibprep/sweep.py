@@ -78,16 +78,15 @@ class StepResult:
 class SweepTask:
     """Everything a worker needs for a chunk of instants (plain, picklable data).
 
-    vertices : (n, 3) float — body frame, metres. faces : (m, 3) int.
-    motion : Motion. grid : Grid — the level the body sits in. dt : float — seconds.
+    bodies : tuple of (vertices (n, 3) float, faces (m, 3) int, Motion) — each body in
+        its placed body frame, metres. grid : Grid — the level the bodies sit in.
+    dt : float — seconds.
     instants : (k,) float — the ``t`` of each pair, seconds, increasing.
     first_index : int — index of the first instant in the whole sweep.
     bc, interface : str — stencil options. limits : StencilLimits.
     """
 
-    vertices: np.ndarray
-    faces: np.ndarray
-    motion: object
+    bodies: tuple
     grid: Grid
     dt: float
     instants: np.ndarray
@@ -131,7 +130,16 @@ def _step_figures(index: int, time: float, grid: Grid, tr, stencils, fresh_mask_
 
 
 def _world(task: SweepTask, t: float):
-    return transform_points(task.motion.pose(t), task.vertices), task.faces
+    """All bodies at time t as one (vertices, faces) surface, world frame."""
+    if len(task.bodies) == 1:
+        v, f, m = task.bodies[0]
+        return transform_points(m.pose(t), v), f
+    verts, faces, offset = [], [], 0
+    for v, f, m in task.bodies:
+        verts.append(transform_points(m.pose(t), v))
+        faces.append(f + offset)
+        offset += len(v)
+    return np.vstack(verts), np.vstack(faces)
 
 
 def _check_pair(task: SweepTask, grid: Grid, k: int, t: float, previous, prev_surface):
@@ -205,9 +213,9 @@ def sweep(surface, motion, grid: Grid, instants, dt: float, *, bc: str = "dirich
 
     Parameters
     ----------
-    surface : closed surface — body frame, metres.
-    motion : Motion.
-    grid : Grid — the level the body sits in.
+    surface : closed surface, or a sequence of them — each body in its (placed) body frame, metres.
+    motion : Motion, or a sequence of them, one per body.
+    grid : Grid — the level the bodies sit in.
     instants : (k,) float — seconds, increasing.
     dt : float — seconds, the solver step.
     bc, interface : str — stencil options (see :func:`~ibprep.build_stencils`).
@@ -231,7 +239,13 @@ def sweep(surface, motion, grid: Grid, instants, dt: float, *, bc: str = "dirich
     IbprepError
         A worker failed; the message names the first instant of its chunk.
     """
-    v, f = as_triangles(surface)
+    if isinstance(motion, (list, tuple)):
+        surfaces, motions = list(surface), list(motion)
+        if len(surfaces) != len(motions) or not surfaces:
+            raise InputError(f"give one motion per body: {len(surfaces)} surfaces, {len(motions)} motions")
+    else:
+        surfaces, motions = [surface], [motion]
+    bodies = tuple((*as_triangles(s_), m_) for s_, m_ in zip(surfaces, motions))
     instants = np.asarray(instants, dtype=float)
     if instants.ndim != 1 or instants.size == 0:
         raise InputError("instants must be a non-empty 1-D array of times in seconds")
@@ -244,7 +258,7 @@ def sweep(surface, motion, grid: Grid, instants, dt: float, *, bc: str = "dirich
         raise InputError(f"scheduler must be an address like tcp://host:8786 or 'local', got {scheduler!r}")
     n_chunks = chunks or (workers if scheduler is None else 2 * max(1, workers))
     parts = chunk_instants(instants, n_chunks)
-    tasks = [SweepTask(v, f, motion, grid, float(dt), times, first, bc, interface, limits) for first, times in parts]
+    tasks = [SweepTask(bodies, grid, float(dt), times, first, bc, interface, limits) for first, times in parts]
     total = len(instants)
     results: list[StepResult] = []
 

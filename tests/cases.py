@@ -99,3 +99,71 @@ upstream_chords = 1
 downstream_chords = 1
 lateral_chords = 0.5
 """
+
+
+#: Two plunging foils in tandem, the aft one a chord and a half behind and half a period later. Invented numbers.
+TANDEM_CASE = """
+[case]
+title = "tandem pair of plunging wings (invented)"
+
+[[bodies]]
+name = "fore"
+section = "0012"
+chord = 0.06
+span = 0.12
+tips = "flat"
+faces = 2000
+[bodies.motion]
+frequency = 0.25
+plunge_amplitude = 0.02
+pitch_amplitude_deg = 10
+phase_deg = 90
+pivot = [0.02, 0.0, 0.0]
+
+[[bodies]]
+name = "aft"
+section = "0012"
+chord = 0.06
+span = 0.12
+tips = "flat"
+faces = 2000
+offset = [0.09, 0.0, 0.0]
+[bodies.motion]
+frequency = 0.25
+plunge_amplitude = 0.02
+pitch_amplitude_deg = 10
+phase_deg = 270
+pivot = [0.02, 0.0, 0.0]
+
+[flow]
+speed = 0.1
+viscosity = 6e-6
+
+[grid]
+lower = [-0.12, -0.12, -0.06]
+upper = [0.48, 0.12, 0.18]
+spacing = 0.006
+[[grid.refine]]
+lower = [-0.03, -0.06, -0.015]
+upper = [0.24, 0.06, 0.135]
+
+[time]
+step = 0.002
+cycles = 1
+
+[checks]
+phases = 4
+cells_per_chord_warn = 15
+cells_per_chord_min = 10
+le_radius_cells_warn = 0.1
+le_radius_cells_min = 0.05
+bl_cells_warn = 2
+bl_cells_min = 1
+stokes_cells_warn = 0.5
+stokes_cells_min = 0.2
+upstream_chords = 1
+downstream_chords = 1
+lateral_chords = 0.5
+spanwise_chords = 0.5
+thin_fraction_max = 0.95
+"""

@@ -75,7 +75,7 @@ def _with(old, new):
         (GOOD.replace("viscosity = 6e-6", ""), r"\[flow\] viscosity is missing"),
         (_with("upper = [0.42, 0.15, 0.21]", "upper = [0.421, 0.15, 0.21]"), r"\[grid\] .*not a whole number"),
         (_with("upper = [0.20, 0.11, 0.19]", "upper = [0.50, 0.11, 0.19]"), r"\[grid\] refinement box 0 reaches outside"),
-        (GOOD + "\n[[bodies]]\nchord = 1\n", r"several bodies .* not supported yet"),
+        (GOOD + "\n[[bodies]]\nchord = 1\n", r"either one \[body\] with its \[motion\], or \[\[bodies\]\]"),
         ("this is = = not toml", r"not valid TOML"),
         (_with('section = "0015"', 'section = "00"'), r"NACA|section"),
     ],

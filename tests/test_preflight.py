@@ -2,9 +2,11 @@
 
 import json
 
+import numpy as np
+
 import pytest
 
-from cases import SMALL_CASE, SMALL_CASE_2D
+from cases import SMALL_CASE, SMALL_CASE_2D, TANDEM_CASE
 from ibprep import parse_case, preflight
 
 
@@ -96,3 +98,26 @@ def test_two_dimensional_case_rejects_three_dimensional_keys():
 
     with pytest.raises(InputError, match=r"\[body\] span has no meaning in a 2-D case"):
         parse_case(SMALL_CASE_2D.replace("chord = 0.06", "chord = 0.06\nspan = 0.1"))
+
+
+def test_tandem_pair_checks_both_bodies_and_their_gap():
+    case = parse_case(TANDEM_CASE)
+    assert [b.name for b in case.bodies] == ["fore", "aft"]
+    # The aft body is placed 0.09 m downstream; its pivot moves with it.
+    assert case.bodies[1].motion.pivot == pytest.approx((0.11, 0.0, 0.0))
+    assert np.asarray(case.bodies[1].surface.vertices)[:, 0].min() == pytest.approx(0.09, abs=1e-9)
+    rep = preflight(case)
+    checks = _by_id(rep)
+    assert checks["stencil.ok"].status == "pass", checks["stencil.ok"].message
+    gap = checks["resolution.gap"]
+    # At rest the gap is 0.09 - 0.06 = 0.03 m = 10 cells; pitching brings the edges closer, never farther apart
+    # than the rest gap plus the edge excursions.
+    assert 0 < gap.value < 10.5 and gap.status == "pass"
+    assert "fore" in gap.message and "aft" in gap.message and "t = " in gap.message
+
+
+def test_tandem_pair_too_close_fails_the_gap_check():
+    rep = preflight(parse_case(TANDEM_CASE.replace("offset = [0.09, 0.0, 0.0]", "offset = [0.063, 0.0, 0.0]")))
+    gap = _by_id(rep)["resolution.gap"]
+    assert gap.status == "fail" and gap.value < 2
+    assert rep.verdict == "fail"
