@@ -5,7 +5,7 @@ The curated public names are listed in ``__all__``; see the README for a tour.
 
 from __future__ import annotations
 
-from .classify import CellTag
+from .classify import CellTag, Transition, classify, classify_levels, step_tags
 from .errors import IbprepError, IbprepWarning, InputError, MissingDependencyError
 from .grid import Grid, NestedGrid, refine
 
@@ -19,5 +19,9 @@ __all__ = [
     "InputError",
     "MissingDependencyError",
     "NestedGrid",
+    "Transition",
+    "classify",
+    "classify_levels",
     "refine",
+    "step_tags",
 ]
