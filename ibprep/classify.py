@@ -50,7 +50,7 @@ Graphics 9(1):66-104.
 from __future__ import annotations
 
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from enum import IntEnum
 from fractions import Fraction
 
@@ -196,15 +196,21 @@ def _axes3(grid: Grid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return ax
 
 
+# Rows of the per-triangle table used by the enumeration (one gather per candidate).
+_AY, _AZ, _BY, _BZ, _CY, _CZ, _DYAB, _DZAB, _DYBC, _DZBC, _DYCA, _DZCA, _AX, _KY, _KZ, _XLO, _XHI = range(17)
+
+
 def _crossings(vertices: np.ndarray, faces: np.ndarray, xs, ys, zs) -> _Crossings:
     """All crossings of the centre rows (y_j, z_k) along x with the triangles."""
-    tri = vertices[faces]  # (m, 3, 3)
-    tri_y = tri[:, :, 1]
-    tri_z = tri[:, :, 2]
-    j0 = np.searchsorted(ys, tri_y.min(axis=1), side="left")
-    j1 = np.searchsorted(ys, tri_y.max(axis=1), side="right")
-    k0 = np.searchsorted(zs, tri_z.min(axis=1), side="left")
-    k1 = np.searchsorted(zs, tri_z.max(axis=1), side="right")
+    vy = np.ascontiguousarray(vertices[:, 1])
+    vz = np.ascontiguousarray(vertices[:, 2])
+    f0, f1, f2 = (np.ascontiguousarray(faces[:, n]) for n in range(3))
+    y0, y1, y2 = vy[f0], vy[f1], vy[f2]
+    z0, z1, z2 = vz[f0], vz[f1], vz[f2]
+    j0 = np.searchsorted(ys, np.minimum(np.minimum(y0, y1), y2), side="left")
+    j1 = np.searchsorted(ys, np.maximum(np.maximum(y0, y1), y2), side="right")
+    k0 = np.searchsorted(zs, np.minimum(np.minimum(z0, z1), z2), side="left")
+    k1 = np.searchsorted(zs, np.maximum(np.maximum(z0, z1), z2), side="right")
     nj = j1 - j0
     nk = k1 - k0
     hit = np.flatnonzero((nj > 0) & (nk > 0))
@@ -212,11 +218,40 @@ def _crossings(vertices: np.ndarray, faces: np.ndarray, xs, ys, zs) -> _Crossing
     if hit.size == 0:
         return empty
     # Triangles with exactly zero projected area are never crossed by a moved row.
-    t = tri[hit]
+    t = vertices[faces[hit]]
     area = _orient_sign(t[:, 0, 1], t[:, 0, 2], t[:, 1, 1], t[:, 1, 2], t[:, 2, 1], t[:, 2, 2])
-    hit = hit[area != 0]
+    nonzero = area != 0
+    hit = hit[nonzero]
+    t = t[nonzero]
     if hit.size == 0:
         return empty
+    a, b, c = t[:, 0], t[:, 1], t[:, 2]
+    table = np.empty((17, hit.size))
+    table[_AY], table[_AZ] = a[:, 1], a[:, 2]
+    table[_BY], table[_BZ] = b[:, 1], b[:, 2]
+    table[_CY], table[_CZ] = c[:, 1], c[:, 2]
+    table[_DYAB], table[_DZAB] = b[:, 1] - a[:, 1], b[:, 2] - a[:, 2]
+    table[_DYBC], table[_DZBC] = c[:, 1] - b[:, 1], c[:, 2] - b[:, 2]
+    table[_DYCA], table[_DZCA] = a[:, 1] - c[:, 1], a[:, 2] - c[:, 2]
+    # Crossing abscissa on the plane n . (q - a) = 0: x = ax - ky (py - ay) - kz (pz - az)
+    # with ky = n_y / n_x, kz = n_z / n_x (n_x != 0: the projected area is not zero).
+    e1 = b - a
+    e2 = c - a
+    n_x = e1[:, 1] * e2[:, 2] - e1[:, 2] * e2[:, 1]
+    n_y = e1[:, 2] * e2[:, 0] - e1[:, 0] * e2[:, 2]
+    n_z = e1[:, 0] * e2[:, 1] - e1[:, 1] * e2[:, 0]
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        ky = n_y / n_x
+        kz = n_z / n_x
+    bad = ~(np.isfinite(ky) & np.isfinite(kz))  # n_x underflowed: use the mid abscissa
+    ky[bad] = 0.0
+    kz[bad] = 0.0
+    xlo = np.minimum(np.minimum(a[:, 0], b[:, 0]), c[:, 0])
+    xhi = np.maximum(np.maximum(a[:, 0], b[:, 0]), c[:, 0])
+    table[_AX] = np.where(bad, 0.5 * (xlo + xhi), a[:, 0])
+    table[_KY], table[_KZ] = ky, kz
+    table[_XLO] = xlo
+    table[_XHI] = xhi
     counts = (nj[hit] * nk[hit]).astype(np.int64)
     ends = np.cumsum(counts)
     starts = ends - counts
@@ -226,46 +261,75 @@ def _crossings(vertices: np.ndarray, faces: np.ndarray, xs, ys, zs) -> _Crossing
     while cuts[-1] < hit.size:
         nxt = int(np.searchsorted(ends, starts[cuts[-1]] + _CANDIDATES_PER_CHUNK, side="right"))
         cuts.append(max(nxt, cuts[-1] + 1))
+    jj0, kk0, nnk = j0[hit], k0[hit], nk[hit]
     parts = []
     for c0, c1 in zip(cuts[:-1], cuts[1:]):
-        parts.append(_crossings_chunk(tri, hit[c0:c1], j0, k0, nk, counts[c0:c1], xs, ys, zs))
+        parts.append(
+            _crossings_chunk(table[:, c0:c1], jj0[c0:c1], kk0[c0:c1], nnk[c0:c1], counts[c0:c1], xs, ys, zs)
+        )
     return _Crossings(*(np.concatenate([p[n] for p in parts]) for n in range(4)))
 
 
-def _crossings_chunk(tri, ids, j0, k0, nk, counts, xs, ys, zs):
+def _side_filtered(ay, az, dy, dz, py, pz):
+    """Left-of-edge flag and whether the floating-point sign is proven (Shewchuk's bound)."""
+    left = py - ay  # qy
+    right = pz - az  # qz
+    right *= dy  # l = dy * qz
+    left *= dz  # r = dz * qy
+    det = right - left
+    np.abs(right, out=right)
+    np.abs(left, out=left)
+    right += left
+    right *= _CCW_ERRBOUND
+    sure = np.abs(det) > right
+    return det > 0, sure
+
+
+def _crossings_chunk(T, j0, k0, nk, counts, xs, ys, zs):
+    """Crossings of one chunk of triangles (columns of the per-triangle table T)."""
     total = int(counts.sum())
-    owner = np.repeat(np.arange(ids.size), counts)
-    local = np.arange(total, dtype=np.int64) - np.repeat(np.cumsum(counts) - counts, counts)
-    t_id = ids[owner]
-    nk_t = nk[t_id]
-    j = j0[t_id] + local // nk_t
-    k = k0[t_id] + local % nk_t
+    owner = np.repeat(np.arange(counts.size), counts)
+    local = np.arange(total, dtype=np.int64)
+    local -= np.repeat(np.cumsum(counts) - counts, counts)
+    nk_o = np.repeat(nk, counts)
+    j = local // nk_o
+    k = local - j * nk_o
+    j += np.repeat(j0, counts)
+    k += np.repeat(k0, counts)
     py = ys[j]
     pz = zs[k]
-    a = tri[t_id, 0]
-    b = tri[t_id, 1]
-    c = tri[t_id, 2]
-    s_ab = _edge_side(a[:, 1], a[:, 2], b[:, 1], b[:, 2], py, pz)
-    s_bc = _edge_side(b[:, 1], b[:, 2], c[:, 1], c[:, 2], py, pz)
-    inside = s_ab == s_bc
-    s_ca = _edge_side(c[inside, 1], c[inside, 2], a[inside, 1], a[inside, 2], py[inside], pz[inside])
-    keep = np.flatnonzero(inside)[s_ca == s_ab[inside]]
-    a, b, c, py, pz, j, k = a[keep], b[keep], c[keep], py[keep], pz[keep], j[keep], k[keep]
-    side = s_ab[keep]  # +1: triangle counter-clockwise in (y, z), outward normal towards +x
-    # Crossing abscissa on the triangle's plane n . (q - a) = 0, clamped to the
-    # triangle's x range (guards nearly edge-on triangles against rounding).
-    e1 = b - a
-    e2 = c - a
-    n_x = e1[:, 1] * e2[:, 2] - e1[:, 2] * e2[:, 1]
-    n_y = e1[:, 2] * e2[:, 0] - e1[:, 0] * e2[:, 2]
-    n_z = e1[:, 0] * e2[:, 1] - e1[:, 1] * e2[:, 0]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        x = a[:, 0] - (n_y * (py - a[:, 1]) + n_z * (pz - a[:, 2])) / n_x
-    lo = np.minimum(np.minimum(a[:, 0], b[:, 0]), c[:, 0])
-    hi = np.maximum(np.maximum(a[:, 0], b[:, 0]), c[:, 0])
-    x = np.where(np.isfinite(x), np.clip(x, lo, hi), 0.5 * (lo + hi))
+    G = np.repeat(T[:_AX], counts, axis=1)  # (12, n) edge data, rows contiguous
+    l_ab, s_ab = _side_filtered(G[_AY], G[_AZ], G[_DYAB], G[_DZAB], py, pz)
+    l_bc, s_bc = _side_filtered(G[_BY], G[_BZ], G[_DYBC], G[_DZBC], py, pz)
+    l_ca, s_ca = _side_filtered(G[_CY], G[_CZ], G[_DYCA], G[_DZCA], py, pz)
+    sure = s_ab & s_bc & s_ca
+    inside = sure & (l_ab == l_bc) & (l_bc == l_ca)
+    unsure = np.flatnonzero(~sure)
+    if unsure.size:
+        # Exact predicates with simulation-of-simplicity ties for the few candidates
+        # the filter could not settle.
+        g = G[:, unsure]
+        qy, qz = py[unsure], pz[unsure]
+        e_ab = _edge_side(g[_AY], g[_AZ], g[_BY], g[_BZ], qy, qz)
+        e_bc = _edge_side(g[_BY], g[_BZ], g[_CY], g[_CZ], qy, qz)
+        e_ca = _edge_side(g[_CY], g[_CZ], g[_AY], g[_AZ], qy, qz)
+        inside[unsure] = (e_ab == e_bc) & (e_bc == e_ca)
+        l_ab[unsure] = e_ab > 0
+    keep = np.flatnonzero(inside)
+    g = np.take(T[_AX:], owner[keep], axis=1)  # plane rows only
+    py, pz = py[keep], pz[keep]
+    py -= G[_AY][keep]
+    pz -= G[_AZ][keep]
+    py *= g[_KY - _AX]
+    pz *= g[_KZ - _AX]
+    py += pz
+    x = g[0] - py
+    np.clip(x, g[_XLO - _AX], g[_XHI - _AX], out=x)  # guards nearly edge-on triangles against rounding
     i = np.searchsorted(xs, x, side="right").astype(np.int64)
-    return i, j, k, (-side).astype(np.int8)
+    # All edges see the row on their left: counter-clockwise in (y, z), outward
+    # normal towards +x, the row leaves the body (-1); else it enters (+1).
+    w = np.where(l_ab[keep], -1, 1).astype(np.int8)
+    return i, j[keep], k[keep], w
 
 
 # --------------------------------------------------------------------------- dense tagging
@@ -334,20 +398,23 @@ def _surface_arrays(surface) -> tuple[np.ndarray, np.ndarray]:
     return as_triangles(surface)
 
 
-def _classify3(vertices, faces, grid: Grid, interface: str) -> tuple[np.ndarray, _Crossings]:
+def _classify3(vertices, faces, grid: Grid, interface: str) -> tuple[np.ndarray, _Crossings, bool]:
+    """Tags of shape (nx, ny, nz) (nz = 1 for a 2-D grid), the crossings, and whether any centre is solid."""
     shape3 = grid.shape if grid.ndim == 3 else (*grid.shape, 1)
     cr = _crossings(vertices, faces, *_axes3(grid))
     tags = np.zeros(shape3, dtype=np.uint8)
     found = _solid_region(cr, shape3)
+    any_solid = False
     if found is not None:
         region, solid = found
         tags[region] = _tags_from_solid(solid, interface)
-    return tags, cr
+        any_solid = bool(solid.any())
+    return tags, cr, any_solid
 
 
-def _warn_if_empty(tags: np.ndarray, vertices: np.ndarray, grid: Grid, what: str = "grid") -> bool:
+def _warn_if_empty(any_solid: bool, vertices: np.ndarray, grid: Grid, what: str = "grid") -> bool:
     """Warn (IbprepWarning) when no centre is solid; return True in that case."""
-    if np.any(tags):
+    if any_solid:
         return False
     lo = vertices.min(axis=0)[: grid.ndim]
     hi = vertices.max(axis=0)[: grid.ndim]
@@ -406,10 +473,9 @@ def classify(surface_in_world, grid: Grid, *, interface: str = "fluid-side") -> 
     interface = _check_interface(interface)
     grid = _check_grid(grid)
     vertices, faces = _surface_arrays(surface_in_world)
-    tags, _ = _classify3(vertices, faces, grid, interface)
-    tags = tags.reshape(grid.shape)
-    _warn_if_empty(tags, vertices, grid)
-    return tags
+    tags, _, any_solid = _classify3(vertices, faces, grid, interface)
+    _warn_if_empty(any_solid, vertices, grid)
+    return tags.reshape(grid.shape)
 
 
 def classify_levels(surface_in_world, nested_grid: NestedGrid, *, interface: str = "fluid-side") -> tuple[np.ndarray, ...]:
@@ -438,10 +504,13 @@ def classify_levels(surface_in_world, nested_grid: NestedGrid, *, interface: str
             f"nested_grid must be an ibprep.NestedGrid, got {type(nested_grid).__name__}; build one with ibprep.refine(...)"
         )
     vertices, faces = _surface_arrays(surface_in_world)
-    out = tuple(_classify3(vertices, faces, g, interface)[0].reshape(g.shape) for g in nested_grid.levels)
-    if not any(np.any(t) for t in out):
-        _warn_if_empty(out[0], vertices, nested_grid.base, what="nested grid")
-    return out
+    out, any_solid = [], False
+    for g in nested_grid.levels:
+        tags, _, solid_here = _classify3(vertices, faces, g, interface)
+        out.append(tags.reshape(g.shape))
+        any_solid |= solid_here
+    _warn_if_empty(any_solid, vertices, nested_grid.base, what="nested grid")
+    return tuple(out)
 
 
 # --------------------------------------------------------------------------- moving bodies
@@ -458,6 +527,10 @@ class Transition:
     region : tuple of slices — index box holding every cell whose tag may have
         changed (empty slices when nothing changed).
     body_outside : bool — no cell centre is solid at the new pose.
+
+    A Transition can be passed back to :func:`step_tags` as ``previous``: it keeps
+    the row crossings of its surface (private), so the next step does not
+    recompute them.
     """
 
     tags: np.ndarray
@@ -465,32 +538,42 @@ class Transition:
     covered: np.ndarray
     region: tuple[slice, ...]
     body_outside: bool
+    _crossings: _Crossings | None = field(default=None, repr=False, compare=False)
+    _grid: Grid | None = field(default=None, repr=False, compare=False)
+    _interface: str | None = field(default=None, repr=False, compare=False)
 
     def __post_init__(self) -> None:
-        if self.tags.dtype != np.uint8:
-            raise InputError(f"Transition.tags must be uint8, got {self.tags.dtype}")
+        if not isinstance(self.tags, np.ndarray) or self.tags.dtype != np.uint8:
+            raise InputError(f"Transition.tags must be a uint8 array, got {getattr(self.tags, 'dtype', type(self.tags))}")
         for name in ("fresh", "covered"):
             arr = getattr(self, name)
-            if arr.ndim != 1 or arr.dtype != np.int64:
-                raise InputError(f"Transition.{name} must be a 1-D int64 array, got {arr.dtype} of shape {arr.shape}")
+            if not isinstance(arr, np.ndarray) or arr.ndim != 1 or arr.dtype != np.int64:
+                raise InputError(f"Transition.{name} must be a 1-D int64 array, got {arr!r:.60}")
         if len(self.region) != self.tags.ndim:
             raise InputError(f"Transition.region needs {self.tags.ndim} slices, got {len(self.region)}")
+
+
+def _sorted_unique(a: np.ndarray) -> np.ndarray:
+    a = np.sort(a)
+    keep = np.ones(a.size, dtype=bool)
+    keep[1:] = a[1:] != a[:-1]
+    return a[keep]
 
 
 def _changed_runs(new: _Crossings, old: _Crossings, shape3):
     """Runs of cells whose solid membership differs between two crossing sets.
 
-    Returns ``(fresh_flat, covered_flat)``, (n,) int64 C-order flat indices over
-    ``shape3``, each sorted.
+    Returns ``(fresh_flat, covered_flat, any_solid_now)``: sorted (n,) int64 C-order
+    flat indices over ``shape3``, and whether any centre is solid for ``new``.
     """
     nx, ny, nz = shape3
     row = np.concatenate([new.j * nz + new.k, old.j * nz + old.k])
     pos = np.concatenate([new.i, old.i])
+    if row.size == 0:
+        return np.empty(0, np.int64), np.empty(0, np.int64), False
     wn = np.concatenate([new.w, np.zeros_like(old.w)]).astype(np.int32)
     wo = np.concatenate([np.zeros_like(new.w), old.w]).astype(np.int32)
-    if row.size == 0:
-        return np.empty(0, np.int64), np.empty(0, np.int64)
-    order = np.argsort(row * (nx + 1) + pos, kind="stable")
+    order = np.argsort(row * (nx + 1) + pos)
     row, pos, wn, wo = row[order], pos[order], wn[order], wo[order]
     cn = np.cumsum(wn)
     co = np.cumsum(wo)
@@ -507,52 +590,88 @@ def _changed_runs(new: _Crossings, old: _Crossings, shape3):
     last = np.ones(row.size, dtype=bool)
     last[:-1] = row[1:] != row[:-1]
     nxt[last] = nx
-    run = (nxt > pos) & (solid_n != solid_o)
+    nxt = np.minimum(nxt, nx)
+    nonempty = nxt > pos
+    any_solid_now = bool(np.any(solid_n & nonempty))
+    run = nonempty & (solid_n != solid_o)
     out = []
     for which in (solid_o & ~solid_n, solid_n & ~solid_o):
         sel = np.flatnonzero(run & which)
-        length = (np.minimum(nxt[sel], nx) - pos[sel]).astype(np.int64)
-        length = np.maximum(length, 0)
+        length = (nxt[sel] - pos[sel]).astype(np.int64)
         total = int(length.sum())
         rep = np.repeat(np.arange(sel.size), length)
         i = pos[sel][rep] + (np.arange(total, dtype=np.int64) - np.repeat(np.cumsum(length) - length, length))
-        flat = i * (ny * nz) + row[sel][rep]
-        out.append(np.sort(flat))
-    return out[0], out[1]
+        out.append(np.sort(i * (ny * nz) + row[sel][rep]))
+    return out[0], out[1], any_solid_now
 
 
-def _neighbours_flat(flat: np.ndarray, shape3) -> np.ndarray:
-    """Flat indices of the cells and their in-grid face neighbours (with repeats)."""
-    idx = np.stack(np.unravel_index(flat, shape3), axis=-1)
-    out = [flat]
+def _retag(flat_tags: np.ndarray, changed: np.ndarray, shape3, interface: str) -> tuple[slice, ...]:
+    """Recompute, in place, the tags of the changed cells and their face neighbours.
+
+    ``flat_tags`` already holds the new solid membership of the changed cells. Only
+    the candidates and their neighbours are read. Returns the index box of the
+    candidates.
+    """
+    cand = _sorted_unique(_neighbours_flat(changed, shape3))
+    idx = np.stack(np.unravel_index(cand, shape3), axis=-1)
+
+    def member(t):
+        return t == CellTag.SOLID if interface == "fluid-side" else t != CellTag.FLUID
+
+    solid_c = member(flat_tags[cand])
+    # fluid-side: does a neighbour hold solid? solid-side: does a neighbour hold fluid?
+    want = interface == "fluid-side"
+    other = np.zeros(cand.size, dtype=bool)
     for ax in range(3):
         if shape3[ax] < 2:
             continue
         for step in (-1, 1):
-            nb = idx.copy()
-            nb[:, ax] += step
-            ok = (nb[:, ax] >= 0) & (nb[:, ax] < shape3[ax])
-            out.append(np.ravel_multi_index(tuple(nb[ok].T), shape3))
+            nb = idx[:, ax] + step
+            ok = (nb >= 0) & (nb < shape3[ax])
+            fl = cand + step * int(np.prod(shape3[ax + 1 :], dtype=np.int64))
+            other |= ok & (member(flat_tags[np.where(ok, fl, cand)]) == want)
+    new_tag = solid_c.astype(np.uint8)
+    if interface == "fluid-side":
+        new_tag[~solid_c & other] = CellTag.INTERFACE
+    else:
+        new_tag[solid_c & other] = CellTag.INTERFACE
+    flat_tags[cand] = new_tag
+    lo, hi = idx.min(axis=0), idx.max(axis=0) + 1
+    return tuple(slice(int(a), int(b)) for a, b in zip(lo, hi))
+
+
+def _neighbours_flat(flat: np.ndarray, shape3) -> np.ndarray:
+    """Flat indices of the cells and their in-grid face neighbours (with repeats)."""
+    idx = np.unravel_index(flat, shape3)
+    out = [flat]
+    for ax in range(3):
+        if shape3[ax] < 2:
+            continue
+        stride = int(np.prod(shape3[ax + 1 :], dtype=np.int64))
+        out.append(flat[idx[ax] > 0] - stride)
+        out.append(flat[idx[ax] < shape3[ax] - 1] + stride)
     return np.concatenate(out)
 
 
-def step_tags(previous_tags, surface_now, grid: Grid, *, previous_surface, interface: str = "fluid-side") -> Transition:
+def step_tags(previous, surface_now, grid: Grid, *, previous_surface=None, interface: str = "fluid-side") -> Transition:
     """Tags at a new pose from the previous step's tags, and the fresh and covered cells.
 
     Only the cells between the previous and the current surface along each row of
     centres are re-tagged (plus their face neighbours for the interface layer), so
-    a step costs a copy of the tag array and work proportional to the surface
-    rather than to the grid.
+    a step costs a copy of the tag array and work proportional to the surface and
+    to the cells it swept, rather than to the grid.
 
     Parameters
     ----------
-    previous_tags : grid.shape uint8 — the tags of ``previous_surface`` on ``grid``
-        with the same ``interface`` option, as returned by :func:`classify` or a
-        previous :func:`step_tags` (not modified).
+    previous : Transition or grid.shape uint8 array
+        The previous step: a :class:`Transition` from the last call (its crossings
+        are reused), or the tags of ``previous_surface`` on ``grid`` with the same
+        ``interface`` option, as returned by :func:`classify`. Not modified.
     surface_now : closed surface — the body at the new pose, world frame (as for
         :func:`classify`).
     grid : Grid
-    previous_surface : closed surface — the body at the previous pose, world frame.
+    previous_surface : closed surface, optional — the body at the previous pose,
+        world frame; required when ``previous`` is a tag array.
     interface : {"fluid-side", "solid-side"}
 
     Returns
@@ -563,8 +682,9 @@ def step_tags(previous_tags, surface_now, grid: Grid, *, previous_surface, inter
     Raises
     ------
     InputError
-        Bad ``interface``, a malformed surface, or ``previous_tags`` of the wrong
-        shape or dtype.
+        Bad ``interface``; a malformed surface; previous tags of the wrong shape or
+        dtype; a tag array without ``previous_surface``; a Transition made for
+        another grid or interface option.
 
     Warns
     -----
@@ -573,57 +693,46 @@ def step_tags(previous_tags, surface_now, grid: Grid, *, previous_surface, inter
     """
     interface = _check_interface(interface)
     grid = _check_grid(grid)
-    prev = np.asarray(previous_tags)
-    if prev.shape != grid.shape or prev.dtype != np.uint8:
-        raise InputError(
-            f"previous_tags must be a uint8 array of the grid's shape {grid.shape}, got {prev.dtype} of shape {prev.shape}; "
-            "pass the tags returned by classify() or step_tags() for this grid"
-        )
-    v_now, f_now = _surface_arrays(surface_now)
-    v_old, f_old = _surface_arrays(previous_surface)
     shape3 = grid.shape if grid.ndim == 3 else (*grid.shape, 1)
     axes = _axes3(grid)
+    if isinstance(previous, Transition) and previous._crossings is not None:
+        if previous._grid != grid or previous._interface != interface:
+            raise InputError(
+                "the previous Transition was made for another grid or interface option "
+                f"({previous._interface!r}); pass the tags and previous_surface instead"
+            )
+        prev = previous.tags
+        old = previous._crossings
+    else:
+        prev = np.asarray(previous.tags if isinstance(previous, Transition) else previous)
+        if prev.shape != grid.shape or prev.dtype != np.uint8:
+            raise InputError(
+                f"previous_tags must be a uint8 array of the grid's shape {grid.shape}, got {prev.dtype} of shape "
+                f"{prev.shape}; pass the tags returned by classify() or step_tags() for this grid"
+            )
+        if previous_surface is None:
+            raise InputError("previous_surface is required when previous is a tag array; pass the body at the previous pose")
+        v_old, f_old = _surface_arrays(previous_surface)
+        old = _crossings(v_old, f_old, *axes)
+    v_now, f_now = _surface_arrays(surface_now)
     new = _crossings(v_now, f_now, *axes)
-    old = _crossings(v_old, f_old, *axes)
-    fresh, covered = _changed_runs(new, old, shape3)
+    fresh, covered, any_solid = _changed_runs(new, old, shape3)
     tags = prev.copy()
     flat_tags = tags.reshape(-1)
     flat_tags[covered] = CellTag.SOLID
     flat_tags[fresh] = CellTag.FLUID
     changed = np.concatenate([fresh, covered])
-    if changed.size:
-        cand = np.unique(_neighbours_flat(changed, shape3))
-        if interface == "fluid-side":
-            is_solid = flat_tags == CellTag.SOLID
-        else:
-            is_solid = flat_tags != CellTag.FLUID
-        # Recompute the tags of the candidates from solid membership alone.
-        nbr = np.stack(np.unravel_index(cand, shape3), axis=-1)
-        solid_c = is_solid[cand]
-        # fluid-side: does a neighbour hold solid? solid-side: does a neighbour hold fluid?
-        want = interface == "fluid-side"
-        any_other = np.zeros(cand.size, dtype=bool)
-        for ax in range(3):
-            if shape3[ax] < 2:
-                continue
-            for step in (-1, 1):
-                nb = nbr.copy()
-                nb[:, ax] += step
-                ok = (nb[:, ax] >= 0) & (nb[:, ax] < shape3[ax])
-                fl = np.ravel_multi_index(tuple(np.where(ok[:, None], nb, 0).T), shape3)
-                any_other |= ok & (is_solid[fl] == want)
-        new_tag = solid_c.astype(np.uint8)
-        if interface == "fluid-side":
-            new_tag[~solid_c & any_other] = CellTag.INTERFACE
-        else:
-            new_tag[solid_c & any_other] = CellTag.INTERFACE
-        flat_tags[cand] = new_tag
-        box = nbr.min(axis=0), nbr.max(axis=0) + 1
-        region3 = tuple(slice(int(a), int(b)) for a, b in zip(*box))
-    else:
-        region3 = (slice(0, 0),) * 3
-    region = region3[: grid.ndim]
-    outside = not np.any(flat_tags)
+    region3 = _retag(flat_tags, changed, shape3, interface) if changed.size else (slice(0, 0),) * 3
+    outside = not any_solid
     if outside:
-        _warn_if_empty(flat_tags, v_now, grid)
-    return Transition(tags=tags, fresh=fresh, covered=covered, region=region, body_outside=outside)
+        _warn_if_empty(False, v_now, grid)
+    return Transition(
+        tags=tags,
+        fresh=fresh,
+        covered=covered,
+        region=region3[: grid.ndim],
+        body_outside=outside,
+        _crossings=new,
+        _grid=grid,
+        _interface=interface,
+    )
