@@ -186,6 +186,7 @@ class _Crossings:
     j: np.ndarray
     k: np.ndarray
     w: np.ndarray
+    row_sorted: bool = False
 
 
 def _axes3(grid: Grid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -553,11 +554,13 @@ class Transition:
             raise InputError(f"Transition.region needs {self.tags.ndim} slices, got {len(self.region)}")
 
 
-def _sorted_unique(a: np.ndarray) -> np.ndarray:
-    a = np.sort(a)
-    keep = np.ones(a.size, dtype=bool)
-    keep[1:] = a[1:] != a[:-1]
-    return a[keep]
+def _row_sorted(cr: _Crossings, shape3) -> _Crossings:
+    """The crossings ordered by row, then by position along the row."""
+    if cr.row_sorted:
+        return cr
+    nx, ny, nz = shape3
+    order = np.argsort((cr.j * nz + cr.k) * (nx + 1) + cr.i)
+    return _Crossings(cr.i[order], cr.j[order], cr.k[order], cr.w[order], row_sorted=True)
 
 
 def _changed_runs(new: _Crossings, old: _Crossings, shape3):
@@ -567,13 +570,15 @@ def _changed_runs(new: _Crossings, old: _Crossings, shape3):
     flat indices over ``shape3``, and whether any centre is solid for ``new``.
     """
     nx, ny, nz = shape3
+    new, old = _row_sorted(new, shape3), _row_sorted(old, shape3)
     row = np.concatenate([new.j * nz + new.k, old.j * nz + old.k])
     pos = np.concatenate([new.i, old.i])
     if row.size == 0:
         return np.empty(0, np.int64), np.empty(0, np.int64), False
     wn = np.concatenate([new.w, np.zeros_like(old.w)]).astype(np.int32)
     wo = np.concatenate([np.zeros_like(new.w), old.w]).astype(np.int32)
-    order = np.argsort(row * (nx + 1) + pos)
+    # Two sorted runs: the stable sort (timsort for integers) merges them in linear time.
+    order = np.argsort(row * (nx + 1) + pos, kind="stable")
     row, pos, wn, wo = row[order], pos[order], wn[order], wo[order]
     cn = np.cumsum(wn)
     co = np.cumsum(wo)
@@ -605,52 +610,58 @@ def _changed_runs(new: _Crossings, old: _Crossings, shape3):
     return out[0], out[1], any_solid_now
 
 
-def _retag(flat_tags: np.ndarray, changed: np.ndarray, shape3, interface: str) -> tuple[slice, ...]:
-    """Recompute, in place, the tags of the changed cells and their face neighbours.
+def _neighbours(flat: np.ndarray, shape3) -> list[tuple[np.ndarray, np.ndarray]]:
+    """For each of the 6 face directions: (neighbour flat index, in-grid flag) of each cell."""
+    nx, ny, nz = shape3
+    i, rem = np.divmod(flat, ny * nz)
+    j, k = np.divmod(rem, nz)
+    out = []
+    for coord, n, stride in ((i, nx, ny * nz), (j, ny, nz), (k, nz, 1)):
+        if n < 2:
+            continue
+        out.append((flat - stride, coord > 0))
+        out.append((flat + stride, coord < n - 1))
+    return out
 
-    ``flat_tags`` already holds the new solid membership of the changed cells. Only
-    the candidates and their neighbours are read. Returns the index box of the
-    candidates.
+
+def _retag(flat_tags: np.ndarray, fresh: np.ndarray, covered: np.ndarray, shape3, interface: str) -> tuple[slice, ...]:
+    """Update, in place, the interface layer around the cells whose membership changed.
+
+    ``flat_tags`` already holds SOLID at ``covered`` and FLUID at ``fresh``. Cells
+    next to a cell that joined the interface's partner side are set directly; cells
+    that may have lost their only partner neighbour are re-checked. Only these
+    cells and their neighbours are read. Returns the index box of the cells that
+    may have changed.
     """
-    cand = _sorted_unique(_neighbours_flat(changed, shape3))
-    idx = np.stack(np.unravel_index(cand, shape3), axis=-1)
-
-    def member(t):
-        return t == CellTag.SOLID if interface == "fluid-side" else t != CellTag.FLUID
-
-    solid_c = member(flat_tags[cand])
-    # fluid-side: does a neighbour hold solid? solid-side: does a neighbour hold fluid?
-    want = interface == "fluid-side"
-    other = np.zeros(cand.size, dtype=bool)
-    for ax in range(3):
-        if shape3[ax] < 2:
-            continue
-        for step in (-1, 1):
-            nb = idx[:, ax] + step
-            ok = (nb >= 0) & (nb < shape3[ax])
-            fl = cand + step * int(np.prod(shape3[ax + 1 :], dtype=np.int64))
-            other |= ok & (member(flat_tags[np.where(ok, fl, cand)]) == want)
-    new_tag = solid_c.astype(np.uint8)
     if interface == "fluid-side":
-        new_tag[~solid_c & other] = CellTag.INTERFACE
+        # Interface = non-solid cells with a solid neighbour.
+        joined, left, partner, plain = covered, fresh, CellTag.SOLID, CellTag.FLUID
     else:
-        new_tag[solid_c & other] = CellTag.INTERFACE
-    flat_tags[cand] = new_tag
-    lo, hi = idx.min(axis=0), idx.max(axis=0) + 1
-    return tuple(slice(int(a), int(b)) for a, b in zip(lo, hi))
-
-
-def _neighbours_flat(flat: np.ndarray, shape3) -> np.ndarray:
-    """Flat indices of the cells and their in-grid face neighbours (with repeats)."""
-    idx = np.unravel_index(flat, shape3)
-    out = [flat]
-    for ax in range(3):
-        if shape3[ax] < 2:
-            continue
-        stride = int(np.prod(shape3[ax + 1 :], dtype=np.int64))
-        out.append(flat[idx[ax] > 0] - stride)
-        out.append(flat[idx[ax] < shape3[ax] - 1] + stride)
-    return np.concatenate(out)
+        # Interface = solid cells with a fluid neighbour.
+        joined, left, partner, plain = fresh, covered, CellTag.FLUID, CellTag.SOLID
+    # Neighbours of cells that joined the partner side become interface unless they
+    # are partner cells themselves.
+    for nb, ok in _neighbours(joined, shape3):
+        nb = nb[ok]
+        flat_tags[nb[flat_tags[nb] != partner]] = CellTag.INTERFACE
+    # Cells that left the partner side, and interface neighbours of theirs, are re-checked.
+    near = [left]
+    for nb, ok in _neighbours(left, shape3):
+        nb = nb[ok]
+        near.append(nb[flat_tags[nb] == CellTag.INTERFACE])
+    check = np.concatenate(near)
+    # `left` cells now hold the non-partner code; re-checked cells are all non-partner.
+    has_partner = np.zeros(check.size, dtype=bool)
+    for nb, ok in _neighbours(check, shape3):
+        has_partner |= ok & (flat_tags[np.where(ok, nb, check)] == partner)
+    flat_tags[check] = np.where(has_partner, np.uint8(CellTag.INTERFACE), np.uint8(plain))
+    nx, ny, nz = shape3
+    changed = np.concatenate([fresh, covered])
+    i, rem = np.divmod(changed, ny * nz)
+    j, k = np.divmod(rem, nz)
+    return tuple(
+        slice(max(int(c.min()) - 1, 0), min(int(c.max()) + 2, n)) for c, n in ((i, nx), (j, ny), (k, nz))
+    )
 
 
 def step_tags(previous, surface_now, grid: Grid, *, previous_surface=None, interface: str = "fluid-side") -> Transition:
@@ -715,14 +726,16 @@ def step_tags(previous, surface_now, grid: Grid, *, previous_surface=None, inter
         v_old, f_old = _surface_arrays(previous_surface)
         old = _crossings(v_old, f_old, *axes)
     v_now, f_now = _surface_arrays(surface_now)
-    new = _crossings(v_now, f_now, *axes)
+    new = _row_sorted(_crossings(v_now, f_now, *axes), shape3)  # kept sorted for the next step
     fresh, covered, any_solid = _changed_runs(new, old, shape3)
     tags = prev.copy()
     flat_tags = tags.reshape(-1)
     flat_tags[covered] = CellTag.SOLID
     flat_tags[fresh] = CellTag.FLUID
-    changed = np.concatenate([fresh, covered])
-    region3 = _retag(flat_tags, changed, shape3, interface) if changed.size else (slice(0, 0),) * 3
+    if fresh.size or covered.size:
+        region3 = _retag(flat_tags, fresh, covered, shape3, interface)
+    else:
+        region3 = (slice(0, 0),) * 3
     outside = not any_solid
     if outside:
         _warn_if_empty(False, v_now, grid)

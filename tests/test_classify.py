@@ -331,6 +331,34 @@ def test_step_equals_full_tagging_and_set_differences(interface):
         prev_tags, prev_mesh = tr.tags, now
 
 
+@pytest.mark.parametrize("interface", ["fluid-side", "solid-side"])
+def test_stepping_from_a_transition_chain_equals_full_taggings(interface):
+    # A time loop passes each Transition to the next step (cached crossings). Oracle:
+    # a full tagging at every step, and fresh / covered as set differences.
+    grid = Grid(lower=(-1, -1, -1), upper=(1, 1, 1), spacing=1 / 32)
+    torus = torus_mesh(0.5, 0.15, 40, 16)
+    poses = []
+    for n in range(5):
+        T = np.eye(4)
+        c, s_ = np.cos(0.04 * n), np.sin(0.04 * n)
+        T[:3, :3] = [[1, 0, 0], [0, c, -s_], [0, s_, c]]
+        T[:3, 3] = [0.4 * n * grid.spacing, 0.0, -0.3 * n * grid.spacing]
+        poses.append(apply_pose(T, torus))
+    tr = step_tags(classify(poses[0], grid, interface=interface), poses[1], grid, previous_surface=poses[0], interface=interface)
+    for prev_mesh, mesh in zip(poses[1:], poses[2:]):
+        before = tr.tags.copy()
+        nxt = step_tags(tr, mesh, grid, interface=interface)
+        np.testing.assert_array_equal(tr.tags, before)
+        full = classify(mesh, grid, interface=interface)
+        np.testing.assert_array_equal(nxt.tags, full)
+        member = (lambda t: t == CellTag.SOLID) if interface == "fluid-side" else (lambda t: t != CellTag.FLUID)
+        np.testing.assert_array_equal(nxt.fresh, np.flatnonzero(member(before) & ~member(full)))
+        np.testing.assert_array_equal(nxt.covered, np.flatnonzero(member(full) & ~member(before)))
+        tr = nxt
+    with pytest.raises(InputError, match="another grid or interface option"):
+        step_tags(tr, poses[0], Grid(lower=(-1, -1, -1), upper=(1, 1, 1), spacing=1 / 16), interface=interface)
+
+
 def test_step_2d_and_leaving_the_grid():
     grid = Grid(lower=(0, 0), upper=(1, 1), spacing=1 / 64)
     sq = np.array([[0.2, 0.2], [0.4, 0.2], [0.4, 0.45], [0.2, 0.45]])
