@@ -5,7 +5,7 @@ The curated public names are listed in ``__all__``; see the README for a tour.
 
 from __future__ import annotations
 
-from .classify import CellTag, Transition, classify, classify_levels, step_tags
+from .classify import CellTag, Transition, classify, classify_levels, label_bodies, step_tags, surface_components
 from .errors import IbprepError, IbprepWarning, InputError, MissingDependencyError
 from .grid import Grid, NestedGrid, refine
 
@@ -22,6 +22,8 @@ __all__ = [
     "Transition",
     "classify",
     "classify_levels",
+    "label_bodies",
     "refine",
     "step_tags",
+    "surface_components",
 ]

@@ -60,7 +60,7 @@ from .errors import IbprepWarning, InputError
 from .grid import Grid, NestedGrid
 from .triangles import as_triangles
 
-__all__ = ["CellTag", "Transition", "classify", "classify_levels", "step_tags"]
+__all__ = ["CellTag", "Transition", "classify", "classify_levels", "label_bodies", "step_tags", "surface_components"]
 
 
 class CellTag(IntEnum):
@@ -82,9 +82,10 @@ INTERFACE_MODES = ("fluid-side", "solid-side")
 _EPS = 2.0**-53
 _CCW_ERRBOUND = (3.0 + 16.0 * _EPS) * _EPS
 
-# Lattice candidates handled per chunk: bounds the transient memory of the
-# enumeration to roughly 100 bytes x this many, about 0.2 GB.
-_CANDIDATES_PER_CHUNK = 2_000_000
+# Lattice candidates handled per chunk: the enumeration holds about 200 bytes per
+# candidate, so a chunk needs about 80 MB (a single triangle covering more lattice
+# points than this is still one chunk).
+_CANDIDATES_PER_CHUNK = 400_000
 
 
 def _check_interface(interface) -> str:
@@ -512,6 +513,83 @@ def classify_levels(surface_in_world, nested_grid: NestedGrid, *, interface: str
         any_solid |= solid_here
     _warn_if_empty(any_solid, vertices, nested_grid.base, what="nested grid")
     return tuple(out)
+
+
+def surface_components(surface) -> tuple[np.ndarray, int]:
+    """Connected components of a triangle surface (faces sharing a vertex position).
+
+    Parameters
+    ----------
+    surface : closed surface — anything :func:`ibprep.triangles.as_triangles` accepts.
+
+    Returns
+    -------
+    component : (m,) int64 — component number of each face, 0-based, numbered in
+        order of each component's first face.
+    count : int — number of components.
+
+    Notes
+    -----
+    Vertices with bitwise-equal coordinates are merged first, so an unwelded
+    triangle soup (as read from STL) is grouped correctly.
+    """
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
+    vertices, faces = _surface_arrays(surface)
+    _, weld = np.unique(vertices, axis=0, return_inverse=True)
+    f = weld.reshape(-1)[faces]
+    n = int(weld.max()) + 1
+    edges = np.concatenate([f[:, [0, 1]], f[:, [1, 2]]])
+    graph = coo_matrix((np.ones(edges.shape[0], np.int8), (edges[:, 0], edges[:, 1])), shape=(n, n))
+    _, vertex_label = connected_components(graph, directed=False)
+    raw = vertex_label[f[:, 0]]
+    # Renumber by first face.
+    first = np.full(raw.max() + 1, faces.shape[0], dtype=np.int64)
+    np.minimum.at(first, raw, np.arange(faces.shape[0]))
+    used = np.flatnonzero(first < faces.shape[0])
+    rank = np.empty(raw.max() + 1, dtype=np.int64)
+    rank[used[np.argsort(first[used])]] = np.arange(used.size)
+    return rank[raw], int(used.size)
+
+
+def label_bodies(surface_in_world, grid: Grid) -> tuple[np.ndarray, int]:
+    """Number the solid cells by the body (connected surface component) holding them.
+
+    Parameters
+    ----------
+    surface_in_world : closed surface — as for :func:`classify`; each connected
+        component of the surface is one body.
+    grid : Grid — 2-D or 3-D.
+
+    Returns
+    -------
+    labels : grid.shape uint16 (int32 beyond 65535 bodies) — 0 for cells outside
+        every body, ``b + 1`` for cells inside body ``b`` (the numbering of
+        :func:`surface_components`); where bodies overlap, the higher number wins.
+    count : int — number of bodies.
+
+    Notes
+    -----
+    Each body is tagged on its own with the rule of :func:`classify`, so cells
+    with a non-zero label are exactly the solid cells of :func:`classify` when the
+    bodies do not overlap. Costs one tagging per body; :func:`classify` does not
+    pay for it.
+    """
+    grid = _check_grid(grid)
+    vertices, faces = _surface_arrays(surface_in_world)
+    comp, count = surface_components((vertices, faces))
+    shape3 = grid.shape if grid.ndim == 3 else (*grid.shape, 1)
+    labels = np.zeros(shape3, dtype=np.uint16 if count < 65535 else np.int32)
+    axes = _axes3(grid)
+    order = np.argsort(comp, kind="stable")
+    bounds = np.searchsorted(comp[order], np.arange(count + 1))
+    for b in range(count):  # one pass per body, not per triangle
+        found = _solid_region(_crossings(vertices, faces[order[bounds[b] : bounds[b + 1]]], *axes), shape3)
+        if found is not None:
+            region, solid = found
+            labels[region][solid] = b + 1
+    return labels.reshape(grid.shape), count
 
 
 # --------------------------------------------------------------------------- moving bodies

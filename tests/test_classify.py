@@ -8,7 +8,7 @@ from conftest import apply_pose, box_mesh, octahedron_mesh, rigid_pose, sphere_m
 from scipy import ndimage
 
 from ibprep import CellTag, Grid, IbprepWarning, InputError, refine
-from ibprep.classify import Transition, classify, classify_levels, step_tags
+from ibprep.classify import Transition, classify, classify_levels, label_bodies, step_tags, surface_components
 
 # Centres closer to the surface than this many cell sizes may legitimately differ
 # from an independent oracle (round-off in either code); 1e-9 h.
@@ -135,7 +135,7 @@ def test_sphere_count_bracketed_by_exact_lattice_counts():
     # the mesh's inradius lies inside the mesh (lower bound by direct count).
     h = 0.125
     R = 1.0
-    v, fcs = sphere_mesh(R, subdivisions=5)
+    v, fcs = sphere_mesh(R, subdivisions=4)
     grid = Grid(lower=(-1.25,) * 3, upper=(1.25,) * 3, spacing=h)
     tags = classify((v, fcs), grid)
     n = int(_solid(tags).sum())
@@ -164,6 +164,23 @@ def test_random_poses_match_libigl_winding_number(shape, seed):
     tags = classify(mesh, grid)
     n = _assert_matches_winding_number(tags, mesh, grid)
     assert n > 0
+
+
+@pytest.mark.parametrize("shape", ["sphere", "torus"])
+def test_vertices_snapped_onto_rows_of_centres_match_libigl(shape):
+    # Vertices rounded to multiples of h/2 on a grid whose centres sit at multiples
+    # of h: many rows pass exactly through vertices and along edges, and many centres
+    # lie exactly on faces. Every centre off the surface must still match the
+    # winding number (libigl igl.winding_number) [computed]; centres on the surface
+    # are covered by the tie-rule tests.
+    h = 1.0 / 16
+    grid = Grid(lower=(-1 - h / 2,) * 3, upper=(1 - h / 2,) * 3, spacing=h)
+    v, f = sphere_mesh(0.8, 2) if shape == "sphere" else torus_mesh(0.55, 0.25, 24, 12)
+    v = np.round(v / (h / 2)) * (h / 2)
+    on_rows = np.sum(np.all(np.isclose(np.round(v[:, 1:] / h) * h, v[:, 1:], rtol=0, atol=0), axis=1))
+    assert on_rows > 20
+    tags = classify((v, f), grid)
+    assert _assert_matches_winding_number(tags, (v, f), grid) > 100
 
 
 def test_flat_wing_tip_on_a_plane_of_centres():
@@ -203,6 +220,30 @@ def test_several_bodies_partly_outside():
     tags = classify(both, grid)
     _assert_matches_winding_number(tags, both, grid)
     np.testing.assert_array_equal(_solid(tags), _solid(classify(a, grid)) | _solid(classify(b, grid)))
+
+
+def test_label_bodies_numbers_each_component():
+    # Three disjoint bodies, one given as an unwelded triangle soup. Oracle: each
+    # body classified on its own (common practice, no single source).
+    grid = Grid(lower=(0, 0, 0), upper=(2, 1, 1), spacing=1 / 32)
+    a = sphere_mesh(0.25, 2, centre=(0.4, 0.5, 0.5))
+    b = box_mesh((1.0, 0.2, 0.2), (1.3, 0.7, 0.6))
+    c = torus_mesh(0.25, 0.08, 24, 10)
+    c = (c[0] + [1.65, 0.5, 0.5], c[1])
+    soup_v = b[0][b[1]].reshape(-1, 3)
+    soup = (soup_v, np.arange(soup_v.shape[0]).reshape(-1, 3))
+    parts = [a, soup, c]
+    v = np.vstack([p[0] for p in parts])
+    offs = np.cumsum([0] + [len(p[0]) for p in parts])[:-1]
+    f = np.vstack([p[1] + o for p, o in zip(parts, offs)])
+    comp, count = surface_components((v, f))
+    assert count == 3
+    np.testing.assert_array_equal(np.unique(comp[: len(a[1])]), [0])
+    labels, n = label_bodies((v, f), grid)
+    assert n == 3 and labels.shape == grid.shape
+    for k, p in enumerate(parts, start=1):
+        np.testing.assert_array_equal(labels == k, _solid(classify(p, grid)))
+    np.testing.assert_array_equal(labels > 0, _solid(classify((v, f), grid)))
 
 
 def test_body_wholly_outside_warns_and_is_all_fluid():
