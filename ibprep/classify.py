@@ -414,6 +414,28 @@ def _classify3(vertices, faces, grid: Grid, interface: str) -> tuple[np.ndarray,
     return tags, cr, any_solid
 
 
+def _warn_if_open(cr: _Crossings, shape3) -> int:
+    """Warn (IbprepWarning) when some row crosses the surface unevenly; return the count of such rows.
+
+    For a closed, consistently oriented surface every row enters the body as often
+    as it leaves it (the predicates are exact, so this holds without tolerance).
+    """
+    if cr.i.size == 0:
+        return 0
+    _, ny, nz = shape3
+    balance = np.bincount(cr.j * nz + cr.k, weights=cr.w, minlength=ny * nz)
+    bad = int(np.count_nonzero(balance))
+    if bad:
+        warnings.warn(
+            f"the surface is not closed or not consistently oriented: {bad} rows of cell centres enter it "
+            "more often than they leave it (or the reverse), so the tags along those rows are unreliable; "
+            "give a watertight surface with outward (or uniformly inward) normals",
+            IbprepWarning,
+            stacklevel=3,
+        )
+    return bad
+
+
 def _warn_if_empty(any_solid: bool, vertices: np.ndarray, grid: Grid, what: str = "grid") -> bool:
     """Warn (IbprepWarning) when no centre is solid; return True in that case."""
     if any_solid:
@@ -463,7 +485,9 @@ def classify(surface_in_world, grid: Grid, *, interface: str = "fluid-side") -> 
     Warns
     -----
     IbprepWarning
-        No cell centre is solid (the body is outside the grid or too small).
+        No cell centre is solid (the body is outside the grid or too small); or
+        the surface is not closed: some row of centres enters it more often than
+        it leaves it.
 
     Notes
     -----
@@ -475,7 +499,8 @@ def classify(surface_in_world, grid: Grid, *, interface: str = "fluid-side") -> 
     interface = _check_interface(interface)
     grid = _check_grid(grid)
     vertices, faces = _surface_arrays(surface_in_world)
-    tags, _, any_solid = _classify3(vertices, faces, grid, interface)
+    tags, cr, any_solid = _classify3(vertices, faces, grid, interface)
+    _warn_if_open(cr, tags.shape)
     _warn_if_empty(any_solid, vertices, grid)
     return tags.reshape(grid.shape)
 
@@ -508,7 +533,8 @@ def classify_levels(surface_in_world, nested_grid: NestedGrid, *, interface: str
     vertices, faces = _surface_arrays(surface_in_world)
     out, any_solid = [], False
     for g in nested_grid.levels:
-        tags, _, solid_here = _classify3(vertices, faces, g, interface)
+        tags, cr, solid_here = _classify3(vertices, faces, g, interface)
+        _warn_if_open(cr, tags.shape)
         out.append(tags.reshape(g.shape))
         any_solid |= solid_here
     _warn_if_empty(any_solid, vertices, nested_grid.base, what="nested grid")
@@ -805,6 +831,7 @@ def step_tags(previous, surface_now, grid: Grid, *, previous_surface=None, inter
         old = _crossings(v_old, f_old, *axes)
     v_now, f_now = _surface_arrays(surface_now)
     new = _row_sorted(_crossings(v_now, f_now, *axes), shape3)  # kept sorted for the next step
+    _warn_if_open(new, shape3)
     fresh, covered, any_solid = _changed_runs(new, old, shape3)
     tags = prev.copy()
     flat_tags = tags.reshape(-1)

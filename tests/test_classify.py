@@ -254,6 +254,22 @@ def test_body_wholly_outside_warns_and_is_all_fluid():
     assert tags.dtype == np.uint8 and tags.shape == grid.shape and not tags.any()
 
 
+def test_open_or_misoriented_surface_warns():
+    # A box with one face missing, and a box with one face flipped: some rows cross
+    # unevenly (the count is exact, so no tolerance is involved).
+    grid = Grid(lower=(0, 0, 0), upper=(1, 1, 1), spacing=1 / 16)
+    v, f = box_mesh((0.2, 0.2, 0.2), (0.8, 0.7, 0.6))
+    with pytest.warns(IbprepWarning, match="not closed or not consistently oriented"):
+        classify((v, f[2:]), grid)  # the x = lo face removed
+    flipped = f.copy()
+    flipped[2:4] = flipped[2:4, ::-1]  # the x = hi face turned inwards
+    with pytest.warns(IbprepWarning, match="rows of cell centres enter it"):
+        classify((v, flipped), grid)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        classify((v, f), grid)  # closed: silent
+
+
 def test_input_not_mutated_and_output_contract():
     v, f = sphere_mesh(0.5, 2)
     v0, f0 = v.copy(), f.copy()
