@@ -38,6 +38,17 @@ For a box whose faces lie on planes of centres, the solid centres are those in
 the merged box. Centres off the surface are tagged exactly as they lie, up to
 the rounding of the crossing abscissa along x (about 1e-16 of the coordinates).
 
+Cost
+----
+Work and transient memory are confined to the index box of the body: the crossing
+enumeration costs a few hundred bytes per lattice point covered by a projected
+triangle (in chunks of at most about 80 MB), the winding sum one byte per cell of
+the box, the interface layer two more; the tag array itself is the only
+whole-grid allocation. Winding numbers are summed in int8, which would wrap only
+past 127 nested layers of surface along one row. The floating-point filter
+assumes coordinates far from overflow and underflow (anything between about
+1e-100 and 1e100 metres).
+
 References
 ----------
 J. R. Shewchuk (1997), "Adaptive precision floating-point arithmetic and fast
@@ -202,55 +213,76 @@ def _axes3(grid: Grid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 _AY, _AZ, _BY, _BZ, _CY, _CZ, _DYAB, _DZAB, _DYBC, _DZBC, _DYCA, _DZCA, _AX, _KY, _KZ, _XLO, _XHI = range(17)
 
 
+def _lattice_range(axis: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Index range [first, stop) of the sorted centre coordinates ``axis`` lying in [lo, hi].
+
+    Same result as ``searchsorted(axis, lo, 'left')``, ``searchsorted(axis, hi,
+    'right')`` (several times faster for many queries): an arithmetic guess from
+    the uniform spacing, made exact by comparisons with the centre coordinates
+    themselves (padded with -inf / +inf).
+    """
+    n = axis.size
+    ext = np.concatenate([[-np.inf], axis, [np.inf]])
+    h = axis[1] - axis[0] if n > 1 else 1.0
+    first = np.ceil((lo - axis[0]) / h)
+    np.clip(first, 0, n, out=first)
+    first = first.astype(np.int64)
+    stop = np.floor((hi - axis[0]) / h) + 1
+    np.clip(stop, 0, n, out=stop)
+    stop = stop.astype(np.int64)
+    # The guess is off by at most one cell (its rounding is ~1e-16 of the index).
+    first += ext[first + 1] < lo  # axis[first] < lo: move right
+    first -= ext[first] >= lo  # axis[first - 1] >= lo: move left
+    stop += ext[stop + 1] <= hi
+    stop -= ext[stop] > hi
+    return first, stop
+
+
 def _crossings(vertices: np.ndarray, faces: np.ndarray, xs, ys, zs) -> _Crossings:
     """All crossings of the centre rows (y_j, z_k) along x with the triangles."""
-    vy = np.ascontiguousarray(vertices[:, 1])
-    vz = np.ascontiguousarray(vertices[:, 2])
-    f0, f1, f2 = (np.ascontiguousarray(faces[:, n]) for n in range(3))
-    y0, y1, y2 = vy[f0], vy[f1], vy[f2]
-    z0, z1, z2 = vz[f0], vz[f1], vz[f2]
-    j0 = np.searchsorted(ys, np.minimum(np.minimum(y0, y1), y2), side="left")
-    j1 = np.searchsorted(ys, np.maximum(np.maximum(y0, y1), y2), side="right")
-    k0 = np.searchsorted(zs, np.minimum(np.minimum(z0, z1), z2), side="left")
-    k1 = np.searchsorted(zs, np.maximum(np.maximum(z0, z1), z2), side="right")
+    vt = np.ascontiguousarray(vertices.T)
+    ft = np.ascontiguousarray(faces.T)
+    y0, y1, y2 = vt[1][ft[0]], vt[1][ft[1]], vt[1][ft[2]]
+    z0, z1, z2 = vt[2][ft[0]], vt[2][ft[1]], vt[2][ft[2]]
+    j0, j1 = _lattice_range(ys, np.minimum(np.minimum(y0, y1), y2), np.maximum(np.maximum(y0, y1), y2))
+    k0, k1 = _lattice_range(zs, np.minimum(np.minimum(z0, z1), z2), np.maximum(np.maximum(z0, z1), z2))
     nj = j1 - j0
     nk = k1 - k0
     hit = np.flatnonzero((nj > 0) & (nk > 0))
     empty = _Crossings(*(np.empty(0, np.int64) for _ in range(3)), np.empty(0, np.int8))
     if hit.size == 0:
         return empty
+    y0, y1, y2, z0, z1, z2 = y0[hit], y1[hit], y2[hit], z0[hit], z1[hit], z2[hit]
     # Triangles with exactly zero projected area are never crossed by a moved row.
-    t = vertices[faces[hit]]
-    area = _orient_sign(t[:, 0, 1], t[:, 0, 2], t[:, 1, 1], t[:, 1, 2], t[:, 2, 1], t[:, 2, 2])
-    nonzero = area != 0
-    hit = hit[nonzero]
-    t = t[nonzero]
-    if hit.size == 0:
+    nonzero = np.flatnonzero(_orient_sign(y0, z0, y1, z1, y2, z2) != 0)
+    if nonzero.size == 0:
         return empty
-    a, b, c = t[:, 0], t[:, 1], t[:, 2]
+    hit = hit[nonzero]
+    y0, y1, y2, z0, z1, z2 = y0[nonzero], y1[nonzero], y2[nonzero], z0[nonzero], z1[nonzero], z2[nonzero]
+    x0, x1, x2 = vt[0][ft[0][hit]], vt[0][ft[1][hit]], vt[0][ft[2][hit]]
     table = np.empty((17, hit.size))
-    table[_AY], table[_AZ] = a[:, 1], a[:, 2]
-    table[_BY], table[_BZ] = b[:, 1], b[:, 2]
-    table[_CY], table[_CZ] = c[:, 1], c[:, 2]
-    table[_DYAB], table[_DZAB] = b[:, 1] - a[:, 1], b[:, 2] - a[:, 2]
-    table[_DYBC], table[_DZBC] = c[:, 1] - b[:, 1], c[:, 2] - b[:, 2]
-    table[_DYCA], table[_DZCA] = a[:, 1] - c[:, 1], a[:, 2] - c[:, 2]
+    table[_AY], table[_AZ] = y0, z0
+    table[_BY], table[_BZ] = y1, z1
+    table[_CY], table[_CZ] = y2, z2
+    table[_DYAB], table[_DZAB] = y1 - y0, z1 - z0
+    table[_DYBC], table[_DZBC] = y2 - y1, z2 - z1
+    table[_DYCA], table[_DZCA] = y0 - y2, z0 - z2
     # Crossing abscissa on the plane n . (q - a) = 0: x = ax - ky (py - ay) - kz (pz - az)
     # with ky = n_y / n_x, kz = n_z / n_x (n_x != 0: the projected area is not zero).
-    e1 = b - a
-    e2 = c - a
-    n_x = e1[:, 1] * e2[:, 2] - e1[:, 2] * e2[:, 1]
-    n_y = e1[:, 2] * e2[:, 0] - e1[:, 0] * e2[:, 2]
-    n_z = e1[:, 0] * e2[:, 1] - e1[:, 1] * e2[:, 0]
+    e1x, e1y, e1z = x1 - x0, table[_DYAB], table[_DZAB]
+    e2x, e2y, e2z = x2 - x0, y2 - y0, z2 - z0
+    n_x = e1y * e2z - e1z * e2y
+    n_y = e1z * e2x - e1x * e2z
+    n_z = e1x * e2y - e1y * e2x
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         ky = n_y / n_x
         kz = n_z / n_x
     bad = ~(np.isfinite(ky) & np.isfinite(kz))  # n_x underflowed: use the mid abscissa
     ky[bad] = 0.0
     kz[bad] = 0.0
-    xlo = np.minimum(np.minimum(a[:, 0], b[:, 0]), c[:, 0])
-    xhi = np.maximum(np.maximum(a[:, 0], b[:, 0]), c[:, 0])
-    table[_AX] = np.where(bad, 0.5 * (xlo + xhi), a[:, 0])
+    xlo = np.minimum(np.minimum(x0, x1), x2)
+    xhi = np.maximum(np.maximum(x0, x1), x2)
+    table[_AX] = np.where(bad, 0.5 * (xlo + xhi), x0)
     table[_KY], table[_KZ] = ky, kz
     table[_XLO] = xlo
     table[_XHI] = xhi
