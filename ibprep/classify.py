@@ -377,10 +377,12 @@ def _solid_region(cr: _Crossings, shape3) -> tuple[tuple[slice, slice, slice], n
     inside = cr.i < nx
     if not np.any(inside):
         return None
+    beyond = not np.all(inside)
     i, j, k, w = cr.i[inside], cr.j[inside], cr.k[inside], cr.w[inside]
     # Cells at or beyond the last crossing of their row have winding zero for a
-    # closed surface, so the box ends before max(i).
-    i_lo, i_hi = int(i.min()), int(i.max())
+    # closed surface, so the box ends before max(i) -- unless some row leaves the
+    # body only past the grid's last centre: then the box runs to the grid's end.
+    i_lo, i_hi = int(i.min()), (nx if beyond else int(i.max()))
     j_lo, j_hi = int(j.min()), int(j.max()) + 1
     k_lo, k_hi = int(k.min()), int(k.max()) + 1
     region = (
