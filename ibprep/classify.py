@@ -653,7 +653,7 @@ def label_bodies(surface_in_world, grid: Grid) -> tuple[np.ndarray, int]:
 
 
 # --------------------------------------------------------------------------- moving bodies
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Transition:
     """Tags after a body moved, and the cells whose solid membership changed.
 
