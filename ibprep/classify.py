@@ -110,7 +110,10 @@ def _check_interface(interface) -> str:
 
 def _check_grid(grid) -> Grid:
     if not isinstance(grid, Grid):
-        raise InputError(f"grid must be an ibprep.Grid, got {type(grid).__name__}; build one with ibprep.Grid(...)")
+        hint = "; for refinement levels use classify_levels()" if isinstance(grid, NestedGrid) else ""
+        raise InputError(
+            f"grid must be an ibprep.Grid, got {type(grid).__name__}; build one with ibprep.Grid(...){hint}"
+        )
     return grid
 
 

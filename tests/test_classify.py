@@ -149,6 +149,54 @@ def test_sphere_count_bracketed_by_exact_lattice_counts():
     _assert_matches_winding_number(tags, (v, fcs), grid)
 
 
+def test_orientation_predicate_is_exact_on_near_degenerate_input():
+    # Oracle: the same determinant in exact rational arithmetic (fractions.Fraction)
+    # [computed]. Points are put on (or one ulp off) random lines, where the
+    # floating-point determinant alone gets the sign wrong.
+    from fractions import Fraction as F
+
+    from ibprep.classify import _orient_sign
+
+    rng = np.random.default_rng(3)
+    n = 3000
+    a = rng.uniform(-1, 1, (n, 2))
+    b = rng.uniform(-1, 1, (n, 2))
+    t = rng.uniform(-2, 3, n)
+    p = a + t[:, None] * (b - a)
+    p[::3] = np.nextafter(p[::3], 2.0)
+    p[1::7] = a[1::7]  # exactly on a vertex
+    got = _orient_sign(a[:, 0], a[:, 1], b[:, 0], b[:, 1], p[:, 0], p[:, 1])
+    exact = []
+    for (ay, az), (by, bz), (py, pz) in zip(a.tolist(), b.tolist(), p.tolist()):
+        d = (F(by) - F(ay)) * (F(pz) - F(az)) - (F(bz) - F(az)) * (F(py) - F(ay))
+        exact.append((d > 0) - (d < 0))
+    np.testing.assert_array_equal(got, exact)
+    naive = np.sign((b[:, 0] - a[:, 0]) * (p[:, 1] - a[:, 1]) - (b[:, 1] - a[:, 1]) * (p[:, 0] - a[:, 0]))
+    assert np.any(naive != np.asarray(exact))  # the case is really near-degenerate
+
+
+def test_rows_grazing_a_vertex_fan_count_once():
+    # A closed fan-shaped double pyramid whose apex rows pass within one ulp of a
+    # vertex shared by many triangles, with non-dyadic coordinates: every row must
+    # cross the top and the bottom once each, so the solid run of the row through
+    # the apex is exactly the centres between the two surfaces. Oracle: libigl
+    # winding number off the surface [computed].
+    h = 0.1
+    grid = Grid(lower=(-1.05, -1.05, -1.05), upper=(1.05, 1.05, 1.05), spacing=h)
+    ys, zs = grid.axes()[1], grid.axes()[2]
+    apex_yz = np.array([ys[10], np.nextafter(zs[10], 1.0)])  # one ulp above a row of centres
+    m = 13
+    ang = 2 * np.pi * (np.arange(m) + 0.37) / m
+    ring = np.column_stack([0.7 * np.cos(ang) + apex_yz[0], 0.7 * np.sin(ang) + apex_yz[1]])
+    v = np.vstack([[[-0.6, *apex_yz]], [[0.55, *apex_yz]], np.column_stack([np.zeros(m) + 0.03, ring])])
+    i = np.arange(m)
+    j = (i + 1) % m
+    f = np.concatenate([np.column_stack([np.zeros(m, int), 2 + j, 2 + i]), np.column_stack([np.ones(m, int), 2 + i, 2 + j])])
+    tags = classify((v, f), grid)
+    _assert_matches_winding_number(tags, (v, f), grid)
+    assert _solid(tags)[:, 10, 10].sum() == np.sum((grid.axes()[0] > -0.6) & (grid.axes()[0] < 0.55))
+
+
 # ---------------------------------------------------------------------------- oracle: libigl
 @pytest.mark.parametrize("seed", [0, 1, 2])
 @pytest.mark.parametrize("shape", ["sphere", "torus", "wing"])
