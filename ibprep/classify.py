@@ -433,10 +433,6 @@ def _tags_from_solid(solid: np.ndarray, interface: str) -> np.ndarray:
     return tags
 
 
-def _surface_arrays(surface) -> tuple[np.ndarray, np.ndarray]:
-    return as_triangles(surface)
-
-
 def _classify3(vertices, faces, grid: Grid, interface: str) -> tuple[np.ndarray, _Crossings, bool]:
     """Tags of shape (nx, ny, nz) (nz = 1 for a 2-D grid), the crossings, and whether any centre is solid."""
     shape3 = grid.shape if grid.ndim == 3 else (*grid.shape, 1)
@@ -535,7 +531,7 @@ def classify(surface_in_world, grid: Grid, *, interface: str = "fluid-side") -> 
     """
     interface = _check_interface(interface)
     grid = _check_grid(grid)
-    vertices, faces = _surface_arrays(surface_in_world)
+    vertices, faces = as_triangles(surface_in_world)
     tags, cr, any_solid = _classify3(vertices, faces, grid, interface)
     _warn_if_open(cr, tags.shape)
     _warn_if_empty(any_solid, vertices, grid)
@@ -567,7 +563,7 @@ def classify_levels(surface_in_world, nested_grid: NestedGrid, *, interface: str
         raise InputError(
             f"nested_grid must be an ibprep.NestedGrid, got {type(nested_grid).__name__}; build one with ibprep.refine(...)"
         )
-    vertices, faces = _surface_arrays(surface_in_world)
+    vertices, faces = as_triangles(surface_in_world)
     out, any_solid = [], False
     for g in nested_grid.levels:
         tags, cr, solid_here = _classify3(vertices, faces, g, interface)
@@ -599,7 +595,7 @@ def surface_components(surface) -> tuple[np.ndarray, int]:
     from scipy.sparse import coo_matrix
     from scipy.sparse.csgraph import connected_components
 
-    vertices, faces = _surface_arrays(surface)
+    vertices, faces = as_triangles(surface)
     _, weld = np.unique(vertices, axis=0, return_inverse=True)
     f = weld.reshape(-1)[faces]
     n = int(weld.max()) + 1
@@ -640,7 +636,7 @@ def label_bodies(surface_in_world, grid: Grid) -> tuple[np.ndarray, int]:
     pay for it.
     """
     grid = _check_grid(grid)
-    vertices, faces = _surface_arrays(surface_in_world)
+    vertices, faces = as_triangles(surface_in_world)
     comp, count = surface_components((vertices, faces))
     shape3 = grid.shape if grid.ndim == 3 else (*grid.shape, 1)
     labels = np.zeros(shape3, dtype=np.uint16 if count < 65535 else np.int32)
@@ -864,9 +860,9 @@ def step_tags(previous, surface_now, grid: Grid, *, previous_surface=None, inter
             )
         if previous_surface is None:
             raise InputError("previous_surface is required when previous is a tag array; pass the body at the previous pose")
-        v_old, f_old = _surface_arrays(previous_surface)
+        v_old, f_old = as_triangles(previous_surface)
         old = _crossings(v_old, f_old, *axes)
-    v_now, f_now = _surface_arrays(surface_now)
+    v_now, f_now = as_triangles(surface_now)
     new = _row_sorted(_crossings(v_now, f_now, *axes), shape3)  # kept sorted for the next step
     _warn_if_open(new, shape3)
     fresh, covered, any_solid = _changed_runs(new, old, shape3)
