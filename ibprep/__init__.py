@@ -7,8 +7,8 @@ the README for a tour.
 
 from __future__ import annotations
 
-from .case import Case, CheckLimits, load_case, parse_case
-from .classify import CellTag
+from .case import BodyCase, Case, CheckLimits, load_case, parse_case
+from .classify import CellTag, Transition, classify, classify_levels, label_bodies, step_tags
 from .errors import IbprepError, IbprepWarning, InputError, MissingDependencyError
 from .geometry import (
     Section,
@@ -39,6 +39,7 @@ from .sizing import propose_boxes, swept_envelope
 __version__ = "0.1.0.dev0"
 
 __all__ = [
+    "BodyCase",
     "Case",
     "CellTag",
     "CheckLimits",
@@ -55,10 +56,14 @@ __all__ = [
     "SmoothSquareWave",
     "SurfaceReport",
     "Tabulated",
+    "Transition",
     "Waveform",
     "WaveformTable",
     "check_surface",
+    "classify",
+    "classify_levels",
     "flow_numbers",
+    "label_bodies",
     "load_case",
     "load_surface",
     "load_waveform_table",
@@ -69,6 +74,7 @@ __all__ = [
     "propose_boxes",
     "refine",
     "save_surface",
+    "step_tags",
     "surface_markers",
     "swept_envelope",
     "thin_regions",
