@@ -211,7 +211,8 @@ def _body_surface_checks(case: Case, mesh, h_body: float, figures: dict) -> list
         k = int(np.argmin(thin.thickness))
         where = f"; thinnest {thin.min_thickness / h_body:.2g} cells near {_fmt_point(thin.points[k])}"
         figures["thin_area_fraction"] = frac
-    msg = f"{100 * frac:.2g} % of the surface is thinner than two cells ({2 * h_body:.3g} m){where}"
+    pct = f"{100 * frac:.0f}" if frac >= 0.1 else f"{100 * frac:.2g}"
+    msg = f"{pct} % of the surface is thinner than two cells ({2 * h_body:.3g} m){where}"
     if frac > case.checks.thin_fraction_max:
         out.append(Check("surface.thin", "fail", frac, case.checks.thin_fraction_max, "area fraction", msg,
                          "refine the grid near the body or thicken the body: thin parts vanish or leak on the grid"))
@@ -308,10 +309,13 @@ def _refine_checks(case: Case, env, figures: dict) -> list[Check]:
                          "the finest box holds the swept body with room for stencils"))
     else:
         axis = int(np.argmin(gap))
+        if gap.min() < 0:
+            what = f"the swept body leaves the finest box along {'xyz'[axis]} by up to {-gap.min():.3g} m"
+        else:
+            what = (f"the swept body comes within {gap.min():.3g} m of the finest box's {'xyz'[axis]} faces; "
+                    f"stencils need {reach:.3g} m ({_STENCIL_REACH_CELLS:g} cells)")
         out.append(Check(
-            "refine.envelope", "fail", float(gap.min() / fin.spacing), _STENCIL_REACH_CELLS, "cells",
-            f"the swept body leaves the finest box along {'xyz'[axis]} by up to {max(0.0, -gap.min()):.3g} m "
-            f"(room needed: {reach:.3g} m)",
+            "refine.envelope", "fail", float(gap.min() / fin.spacing), _STENCIL_REACH_CELLS, "cells", what,
             "enlarge the finest box to hold the swept envelope plus margins; `ibprep size` proposes boxes"))
     if len(ng.levels) > 1:
         wake = float((hi[0] - env.upper[0]) / c)
