@@ -8,6 +8,7 @@ from __future__ import annotations
 from .classify import CellTag
 from .errors import IbprepError, IbprepWarning, InputError, MissingDependencyError
 from .grid import Grid, NestedGrid, refine
+from .stencils import StencilLimits, Stencils, StencilSummary, build_stencils, load_stencils
 
 __version__ = "0.1.0.dev0"
 
@@ -19,5 +20,10 @@ __all__ = [
     "InputError",
     "MissingDependencyError",
     "NestedGrid",
+    "StencilLimits",
+    "StencilSummary",
+    "Stencils",
+    "build_stencils",
+    "load_stencils",
     "refine",
 ]
