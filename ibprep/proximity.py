@@ -219,6 +219,8 @@ class TriangleIndex:
     bucket_start: np.ndarray = field(init=False, repr=False)
     bucket_count: np.ndarray = field(init=False, repr=False)
     bucket_items: np.ndarray = field(init=False, repr=False)
+    tri_centre: np.ndarray = field(init=False, repr=False)
+    tri_radius: np.ndarray = field(init=False, repr=False)
 
     def __post_init__(self) -> None:
         v = np.ascontiguousarray(self.vertices, dtype=float)
@@ -304,6 +306,8 @@ class TriangleIndex:
             ("bucket_start", start.astype(np.int64)),
             ("bucket_count", (stop - start).astype(np.int64)),
             ("bucket_items", items.astype(np.int64)),
+            ("tri_centre", tri.mean(axis=1)),
+            ("tri_radius", np.linalg.norm(tri - tri.mean(axis=1)[:, None, :], axis=2).max(axis=1) * (1 + 1e-12)),
         ):
             object.__setattr__(self, name, value)
 
@@ -389,27 +393,43 @@ class TriangleIndex:
         return ClosestPoints(point=best_q, distance=dist, normal=normal, face=face, exact=exact)
 
     def _search(self, p, qidx, qbucket, offsets, best_d2, best_face, best_q, best_region):
-        """Update the running best for queries qidx from the buckets at the given offsets."""
-        # Chunk the queries so the pair arrays stay bounded.
+        """Update the running best for queries qidx from the buckets at the given offsets.
+
+        Pairs are first screened with the triangles' bounding spheres: a triangle whose
+        sphere lies farther than the nearest centroid (an upper bound on the distance)
+        cannot hold the closest point, so Ericson's test runs on the few survivors.
+        """
         per_query = max(1.0, float(self.bucket_count.mean()) * offsets.shape[0] * 4)
         step = max(1, int(_PAIR_CHUNK / per_query))
         for s0 in range(0, qidx.size, step):  # chunks of many thousand queries
-            qi = qidx[s0 : s0 + step]
-            q_rep, t_rep = self._pairs_for_offsets(qi, qbucket[s0 : s0 + step], offsets)
+            q_rep, t_rep = self._pairs_for_offsets(qidx[s0 : s0 + step], qbucket[s0 : s0 + step], offsets)
+            if q_rep.size == 0:
+                continue
+            pq = p[q_rep]
+            dc = pq - self.tri_centre[t_rep]
+            dc = np.sqrt(np.einsum("ij,ij->i", dc, dc))
+            starts = np.flatnonzero(np.r_[True, q_rep[1:] != q_rep[:-1]])
+            groups = np.diff(np.r_[starts, q_rep.size])
+            ub = np.minimum(np.minimum.reduceat(dc, starts), np.sqrt(best_d2[q_rep[starts]]))
+            keep = dc - self.tri_radius[t_rep] <= np.repeat(ub, groups)
+            q_rep = q_rep[keep]
+            t_rep = t_rep[keep]
+            pq = pq[keep]
             if q_rep.size == 0:
                 continue
             tri = self.tri[t_rep]
-            q, region = closest_point_on_triangles(p[q_rep], tri[:, 0], tri[:, 1], tri[:, 2])
-            d2 = np.einsum("ij,ij->i", q - p[q_rep], q - p[q_rep])
-            # Per-query minimum: sort by (query, d2) and take the first of each query.
-            order = np.lexsort((d2, q_rep))
-            qs = q_rep[order]
-            first = np.flatnonzero(np.r_[True, qs[1:] != qs[:-1]])
-            sel = order[first]
-            qw = q_rep[sel]
-            better = d2[sel] < best_d2[qw]
+            q, region = closest_point_on_triangles(pq, tri[:, 0], tri[:, 1], tri[:, 2])
+            dq = q - pq
+            d2 = np.einsum("ij,ij->i", dq, dq)
+            starts = np.flatnonzero(np.r_[True, q_rep[1:] != q_rep[:-1]])
+            groups = np.diff(np.r_[starts, q_rep.size])
+            mins = np.minimum.reduceat(d2, starts)
+            at_min = np.flatnonzero(d2 == np.repeat(mins, groups))
+            first = at_min[np.r_[True, q_rep[at_min[1:]] != q_rep[at_min[:-1]]]]
+            qw = q_rep[first]
+            better = d2[first] < best_d2[qw]
             qw = qw[better]
-            sel = sel[better]
+            sel = first[better]
             best_d2[qw] = d2[sel]
             best_face[qw] = t_rep[sel]
             best_q[qw] = q[sel]
@@ -466,6 +486,15 @@ class TriangleIndex:
             if s_rep.size == 0:
                 continue
             t_rep = self.bucket_items[pos]
+            # Bounding-sphere screen: the segment must pass within the triangle's sphere.
+            a0 = p0[s_rep]
+            dv = p1[s_rep] - a0
+            cv = self.tri_centre[t_rep] - a0
+            tt = np.clip(np.einsum("ij,ij->i", cv, dv) / np.maximum(np.einsum("ij,ij->i", dv, dv), 1e-300), 0, 1)
+            gap = cv - tt[:, None] * dv
+            close = np.einsum("ij,ij->i", gap, gap) <= self.tri_radius[t_rep] ** 2
+            s_rep = s_rep[close]
+            t_rep = t_rep[close]
             tri = self.tri[t_rep]
             crossing = segments_cross_triangles(p0[s_rep], p1[s_rep], tri[:, 0], tri[:, 1], tri[:, 2])
             hit[s_rep[crossing]] = True
