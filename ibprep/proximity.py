@@ -120,6 +120,13 @@ def closest_point_on_triangles(p, a, b, c):
     return q, region
 
 
+def _cross(u, v):
+    return np.stack(
+        [u[:, 1] * v[:, 2] - u[:, 2] * v[:, 1], u[:, 2] * v[:, 0] - u[:, 0] * v[:, 2], u[:, 0] * v[:, 1] - u[:, 1] * v[:, 0]],
+        axis=1,
+    )
+
+
 def segments_cross_triangles(p0, p1, a, b, c):
     """Whether each segment crosses its paired triangle (Möller–Trumbore).
 
@@ -134,18 +141,22 @@ def segments_cross_triangles(p0, p1, a, b, c):
     point (a segment through an edge or a corner counts; a segment lying in the
     triangle's plane does not).
     """
-    d = np.asarray(p1, float) - np.asarray(p0, float)
-    e1 = np.asarray(b, float) - np.asarray(a, float)
-    e2 = np.asarray(c, float) - np.asarray(a, float)
-    pv = np.cross(d, e2)
+    p0 = np.asarray(p0, float)
+    a = np.asarray(a, float)
+    d = np.asarray(p1, float) - p0
+    e1 = np.asarray(b, float) - a
+    e2 = np.asarray(c, float) - a
+    pv = _cross(d, e2)
     det = np.einsum("ij,ij->i", e1, pv)
-    scale = np.linalg.norm(d, axis=1) * np.linalg.norm(e1, axis=1) * np.linalg.norm(e2, axis=1)
+    # |det| = |d . (e1 x e2)|: compare with |d| |e1 x e2| to reject near-parallel pairs.
+    nrm = _cross(e1, e2)
+    scale = np.sqrt(np.einsum("ij,ij->i", d, d) * np.einsum("ij,ij->i", nrm, nrm))
     good = np.abs(det) > 1e-14 * scale
     with np.errstate(divide="ignore", invalid="ignore"):
         inv = np.where(good, 1.0 / np.where(good, det, 1.0), 0.0)
-        tv = np.asarray(p0, float) - np.asarray(a, float)
+        tv = p0 - a
         u = np.einsum("ij,ij->i", tv, pv) * inv
-        qv = np.cross(tv, e1)
+        qv = _cross(tv, e1)
         v = np.einsum("ij,ij->i", d, qv) * inv
         t = np.einsum("ij,ij->i", e2, qv) * inv
     s = _BARY_SLACK
@@ -221,6 +232,9 @@ class TriangleIndex:
     bucket_items: np.ndarray = field(init=False, repr=False)
     tri_centre: np.ndarray = field(init=False, repr=False)
     tri_radius: np.ndarray = field(init=False, repr=False)
+    centre_start: np.ndarray = field(init=False, repr=False)
+    centre_count: np.ndarray = field(init=False, repr=False)
+    centre_items: np.ndarray = field(init=False, repr=False)
 
     def __post_init__(self) -> None:
         v = np.ascontiguousarray(self.vertices, dtype=float)
@@ -293,7 +307,20 @@ class TriangleIndex:
         nb = int(np.prod(dims))
         start = np.searchsorted(bucket, np.arange(nb, dtype=np.int64), side="left")
         stop = np.searchsorted(bucket, np.arange(nb, dtype=np.int64), side="right")
+        # Second bucketing, by centroid only (each triangle once): for ball queries with
+        # bounding spheres, which need no de-duplication.
+        centre = tri.mean(axis=1)
+        radius = np.linalg.norm(tri - centre[:, None, :], axis=2).max(axis=1) * (1 + 1e-12)
+        cb = np.clip(np.floor((centre[tid] - box_lo) / s).astype(np.int64), 0, dims - 1)
+        cflat = (cb[:, 0] * dims[1] + cb[:, 1]) * dims[2] + cb[:, 2]
+        corder = np.argsort(cflat, kind="stable")
+        cflat = cflat[corder]
+        cstart = np.searchsorted(cflat, np.arange(nb, dtype=np.int64), side="left")
+        cstop = np.searchsorted(cflat, np.arange(nb, dtype=np.int64), side="right")
         for name, value in (
+            ("centre_start", cstart.astype(np.int64)),
+            ("centre_count", (cstop - cstart).astype(np.int64)),
+            ("centre_items", tid[corder].astype(np.int64)),
             ("vertices", v),
             ("faces", f),
             ("bucket_size", s),
@@ -306,8 +333,8 @@ class TriangleIndex:
             ("bucket_start", start.astype(np.int64)),
             ("bucket_count", (stop - start).astype(np.int64)),
             ("bucket_items", items.astype(np.int64)),
-            ("tri_centre", tri.mean(axis=1)),
-            ("tri_radius", np.linalg.norm(tri - tri.mean(axis=1)[:, None, :], axis=2).max(axis=1) * (1 + 1e-12)),
+            ("tri_centre", centre),
+            ("tri_radius", radius),
         ):
             object.__setattr__(self, name, value)
 
@@ -434,6 +461,177 @@ class TriangleIndex:
             best_face[qw] = t_rep[sel]
             best_q[qw] = q[sel]
             best_region[qw] = region[sel]
+
+    def near_pairs(self, points, radius: float):
+        """Triangles whose bounding sphere meets the ball of ``radius`` around each point.
+
+        Parameters
+        ----------
+        points : (n, 3) float — metres.
+        radius : float — metres.
+
+        Returns
+        -------
+        owner : (p,) int64 — point of each pair, non-decreasing.
+        tri : (p,) int64 — triangle of each pair (each triangle at most once per point).
+        """
+        p = np.ascontiguousarray(points, dtype=float).reshape(-1, 3)
+        s = self.bucket_size
+        dims = np.asarray(self.dims)
+        rmax = float(self.tri_radius.max(initial=0.0))
+        reach = radius + rmax
+        lo = np.clip(self._bucket_of(p - reach), 0, dims - 1)
+        hi = np.clip(self._bucket_of(p + reach), 0, dims - 1)
+        far = np.any((p + reach < self.origin) | (p - reach > self.origin + dims * s), axis=1)
+        ext = hi - lo + 1
+        cnt = np.where(far, 0, np.prod(ext, axis=1))
+        owner, local = _expand_csr(np.arange(p.shape[0]), np.zeros_like(cnt), cnt)
+        e = ext[owner]
+        bx = lo[owner, 0] + local // (e[:, 1] * e[:, 2])
+        by = lo[owner, 1] + (local // e[:, 2]) % e[:, 1]
+        bz = lo[owner, 2] + local % e[:, 2]
+        flat = (bx * dims[1] + by) * dims[2] + bz
+        o_rep, pos = _expand_csr(owner, self.centre_start[flat], self.centre_count[flat])
+        t_rep = self.centre_items[pos]
+        dc = p[o_rep] - self.tri_centre[t_rep]
+        keep = np.einsum("ij,ij->i", dc, dc) <= (radius + self.tri_radius[t_rep]) ** 2
+        return o_rep[keep], t_rep[keep]
+
+    def distance_lower_bound(self, points, max_distance: float) -> np.ndarray:
+        """Cheap lower bounds on the distance to the surface, capped at ``max_distance``.
+
+        Uses the triangles' bounding spheres: distance ≥ |p - centre| - radius.
+
+        Parameters
+        ----------
+        points : (n, 3) float — metres.
+        max_distance : float — metres; bounds above it are reported as it.
+
+        Returns
+        -------
+        (n,) float — metres, 0 ≤ bound ≤ true distance.
+        """
+        p = np.ascontiguousarray(points, dtype=float).reshape(-1, 3)
+        out = np.full(p.shape[0], float(max_distance))
+        owner, tri = self.near_pairs(p, max_distance)
+        if owner.size:
+            dc = p[owner] - self.tri_centre[tri]
+            lb = np.maximum(np.sqrt(np.einsum("ij,ij->i", dc, dc)) - self.tri_radius[tri], 0.0)
+            np.minimum.at(out, owner, lb)
+        return out
+
+    def segments_cross_from(self, origins, owner, ends, reach: float) -> np.ndarray:
+        """Whether segments from shared origins cross the surface.
+
+        Parameters
+        ----------
+        origins : (no, 3) float — metres; segment starts, shared by many segments.
+        owner : (n,) int — origin of each segment.
+        ends : (n, 3) float — metres.
+        reach : float — metres; no segment is longer than this.
+
+        Returns
+        -------
+        (n,) bool — as :meth:`segments_cross`.
+        """
+        o = np.ascontiguousarray(origins, dtype=float).reshape(-1, 3)
+        owner = np.asarray(owner, dtype=np.int64)
+        e = np.ascontiguousarray(ends, dtype=float).reshape(-1, 3)
+        hit = np.zeros(owner.size, dtype=bool)
+        if owner.size == 0:
+            return hit
+        used = np.unique(owner)
+        po, pt = self.near_pairs(o[used], reach)  # triangles near each used origin, grouped
+        tcount = np.bincount(po, minlength=used.size)
+        tstart = np.cumsum(tcount) - tcount
+        slot = np.searchsorted(used, owner)
+        per_seg = max(1.0, float(tcount.mean()))
+        step = max(1, int(_PAIR_CHUNK / per_seg))
+        for s0 in range(0, owner.size, step):  # chunks of many thousand segments
+            seg = np.arange(s0, min(owner.size, s0 + step))
+            sl = slot[seg]
+            s_rep, pos = _expand_csr(seg, tstart[sl], tcount[sl])
+            t_rep = pt[pos]
+            a0 = o[owner[s_rep]]
+            dv = e[s_rep] - a0
+            cv = self.tri_centre[t_rep] - a0
+            tt = np.clip(np.einsum("ij,ij->i", cv, dv) / np.maximum(np.einsum("ij,ij->i", dv, dv), 1e-300), 0, 1)
+            gap = cv - tt[:, None] * dv
+            close = np.einsum("ij,ij->i", gap, gap) <= self.tri_radius[t_rep] ** 2
+            s_rep = s_rep[close]
+            t_rep = t_rep[close]
+            if s_rep.size == 0:
+                continue
+            tri = self.tri[t_rep]
+            crossing = segments_cross_triangles(o[owner[s_rep]], e[s_rep], tri[:, 0], tri[:, 1], tri[:, 2])
+            hit[s_rep[crossing]] = True
+        return hit
+
+    def segments_cross_fan(self, origins, ends, valid, reach: float) -> np.ndarray:
+        """Whether segments fanning out from one origin per row cross the surface.
+
+        Parameters
+        ----------
+        origins : (n, 3) float — metres; one start per row.
+        ends : (n, c, 3) float — metres; the ends of each row's segments.
+        valid : (n, c) bool — which segments to test (others come back false).
+        reach : float — metres; no segment is longer than this.
+
+        Returns
+        -------
+        (n, c) bool — as :meth:`segments_cross`.
+
+        Notes
+        -----
+        Per row, the triangles whose bounding sphere meets the ball of ``reach``
+        around the origin are gathered once; a batched matrix product gives the
+        signed heights of all segment ends over all those triangles' planes, and
+        only (segment, triangle) pairs whose ends are not strictly on one side of
+        the plane go to the exact Möller–Trumbore test.
+        """
+        o = np.ascontiguousarray(origins, dtype=float).reshape(-1, 3)
+        e = np.asarray(ends, dtype=float)
+        valid = np.asarray(valid, dtype=bool)
+        n, c = valid.shape
+        hit = np.zeros((n, c), dtype=bool)
+        rows_used = np.flatnonzero(valid.any(axis=1))
+        if rows_used.size == 0:
+            return hit
+        po, pt = self.near_pairs(o[rows_used], reach)
+        if po.size == 0:
+            return hit
+        tcount = np.bincount(po, minlength=rows_used.size)
+        tstart = np.cumsum(tcount) - tcount
+        tmax = int(tcount.max())
+        step = max(1, int(4_000_000 / max(1, c * tmax)))
+        for s0 in range(0, rows_used.size, step):  # chunks of many thousand rows
+            sl = slice(s0, s0 + step)
+            rows = rows_used[sl]
+            nr = rows.size
+            slot = np.arange(tmax)[None, :]
+            have = slot < tcount[sl, None]
+            TI = np.where(have, pt[np.minimum(tstart[sl, None] + slot, pt.size - 1)], 0)  # (nr, T)
+            N = np.where(have[:, :, None], self.face_normal[TI], 0.0)
+            A0 = self.tri[TI, 0]
+            oo = o[rows]
+            s_o = np.einsum("rtk,rtk->rt", oo[:, None, :] - A0, N)  # origin height over each plane
+            D = e[rows] - oo[:, None, :]  # (nr, c, 3)
+            s_j = np.matmul(D, np.swapaxes(N, 1, 2)) + s_o[:, None, :]  # end heights (nr, c, T)
+            possible = (s_j * s_o[:, None, :] <= 0.0) & valid[rows][:, :, None] & have[:, None, :]
+            # Bounding-sphere screen, also dense: the segment must pass within the sphere.
+            C = self.tri_centre[TI] - oo[:, None, :]
+            dot = np.matmul(D, np.swapaxes(C, 1, 2))
+            dd = np.maximum(np.einsum("rck,rck->rc", D, D), 1e-300)[:, :, None]
+            cc = np.einsum("rtk,rtk->rt", C, C)[:, None, :]
+            t = np.clip(dot / dd, 0.0, 1.0)
+            possible &= cc - 2.0 * t * dot + t * t * dd <= (self.tri_radius[TI] ** 2)[:, None, :]
+            r_i, c_i, t_i = np.nonzero(possible)
+            if r_i.size == 0:
+                continue
+            tri = self.tri[TI[r_i, t_i]]
+            crossing = segments_cross_triangles(oo[r_i], e[rows[r_i], c_i], tri[:, 0], tri[:, 1], tri[:, 2])
+            hit[rows[r_i[crossing]], c_i[crossing]] = True
+        return hit
 
     def segments_cross(self, starts, ends) -> np.ndarray:
         """Whether each straight segment crosses the surface.

@@ -110,3 +110,30 @@ def test_bad_index_input():
         TriangleIndex(np.eye(3), np.array([[0, 1, 2]]), bucket_size=0.0)
     with pytest.raises(InputError, match=r"needs \(n, 3\) vertices"):
         TriangleIndex(np.eye(3)[:, :2], np.array([[0, 1, 2]]), bucket_size=1.0)
+
+
+def test_cheap_distance_lower_bound_is_a_lower_bound():
+    m = _annulus()
+    rng = np.random.default_rng(5)
+    p = rng.uniform(-1.5, 1.5, (500, 3))
+    idx = TriangleIndex(m.vertices, m.faces, bucket_size=0.15)
+    exact = idx.closest(p).distance
+    lb = idx.distance_lower_bound(p, 0.3)
+    assert np.all(lb <= np.minimum(exact, 0.3) + DIST_TOL)
+    assert np.all(lb >= 0.0)
+    # Tight where the sphere bound is: far points come back at the cap.
+    assert np.all(lb[exact > 0.3 + 2 * idx.tri_radius.max()] == 0.3)
+
+
+def test_fan_crossing_agrees_with_plain_crossing():
+    # Two implementations of the same predicate (Möller & Trumbore 1997) must agree.
+    m = _annulus()
+    rng = np.random.default_rng(6)
+    o = rng.uniform(-1.2, 1.2, (200, 3))
+    ends = o[:, None, :] + rng.uniform(-0.4, 0.4, (200, 7, 3))
+    valid = rng.random((200, 7)) < 0.8
+    idx = TriangleIndex(m.vertices, m.faces, bucket_size=0.15)
+    fan = idx.segments_cross_fan(o, ends, valid, reach=0.7)
+    plain = idx.segments_cross(np.repeat(o, 7, axis=0), ends.reshape(-1, 3)).reshape(200, 7) & valid
+    np.testing.assert_array_equal(fan, plain)
+    assert plain.sum() > 20
