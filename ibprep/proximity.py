@@ -616,19 +616,31 @@ class TriangleIndex:
             oo = o[rows]
             s_o = np.einsum("rtk,rtk->rt", oo[:, None, :] - A0, N)  # origin height over each plane
             D = e[rows] - oo[:, None, :]  # (nr, c, 3)
-            s_j = np.matmul(D, np.swapaxes(N, 1, 2)) + s_o[:, None, :]  # end heights (nr, c, T)
-            possible = (s_j * s_o[:, None, :] <= 0.0) & valid[rows][:, :, None] & have[:, None, :]
-            # Bounding-sphere screen, also dense: the segment must pass within the sphere.
-            C = self.tri_centre[TI] - oo[:, None, :]
-            dot = np.matmul(D, np.swapaxes(C, 1, 2))
-            dd = np.maximum(np.einsum("rck,rck->rc", D, D), 1e-300)[:, :, None]
+            # End heights over every plane, (nr, c, T), as three broadcast multiply-adds.
+            s_j = D[:, :, 0, None] * N[:, None, :, 0]
+            s_j += D[:, :, 1, None] * N[:, None, :, 1]
+            s_j += D[:, :, 2, None] * N[:, None, :, 2]
+            s_j += s_o[:, None, :]
+            # Where the segment meets the plane, it must lie within the triangle's sphere:
+            # tau = s_o / (s_o - s_j) in [0, 1]; |o + tau D - centre|^2 <= radius^2.
+            C = self.tri_centre[TI] - oo[:, None, :]  # (nr, T, 3)
+            dot = D[:, :, 0, None] * C[:, None, :, 0]
+            dot += D[:, :, 1, None] * C[:, None, :, 1]
+            dot += D[:, :, 2, None] * C[:, None, :, 2]
+            dd = np.einsum("rck,rck->rc", D, D)[:, :, None]
             cc = np.einsum("rtk,rtk->rt", C, C)[:, None, :]
-            t = np.clip(dot / dd, 0.0, 1.0)
-            possible &= cc - 2.0 * t * dot + t * t * dd <= (self.tri_radius[TI] ** 2)[:, None, :]
+            with np.errstate(divide="ignore", invalid="ignore"):
+                tau = s_o[:, None, :] / (s_o[:, None, :] - s_j)
+            possible = (tau >= 0.0) & (tau <= 1.0)  # NaN (in-plane or degenerate) drops out
+            tau = np.where(possible, tau, 0.0)
+            possible &= cc - 2.0 * tau * dot + tau * tau * dd <= (self.tri_radius[TI] ** 2 * (1 + 1e-9))[:, None, :]
+            possible &= valid[rows][:, :, None]
+            possible &= have[:, None, :]
             r_i, c_i, t_i = np.nonzero(possible)
             if r_i.size == 0:
                 continue
-            tri = self.tri[TI[r_i, t_i]]
+            tid = TI[r_i, t_i]
+            tri = self.tri[tid]
             crossing = segments_cross_triangles(oo[r_i], e[rows[r_i], c_i], tri[:, 0], tri[:, 1], tri[:, 2])
             hit[rows[r_i[crossing]], c_i[crossing]] = True
         return hit

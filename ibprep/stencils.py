@@ -800,9 +800,15 @@ def _visible(index, good, cflat, origin, origin_dist, centres_of, r, h):
     xj = xu[inv]
     seg_len = np.linalg.norm(xj - origin[rows], axis=1)
     longest = float(seg_len.max())
-    valid = good
-    ends = np.zeros(good.shape + (3,))
-    ends[rows, cols] = xj
-    cross = index.segments_cross_fan(origin, ends, valid, longest * (1 + 1e-9))
+    # Pack each row's allowed candidates to the left so the dense screens stay narrow.
+    slot = np.arange(rows.size) - np.searchsorted(rows, rows)  # rank within its row
+    width = int(slot.max()) + 1
+    valid = np.zeros((good.shape[0], width), dtype=bool)
+    valid[rows, slot] = True
+    ends = np.zeros((good.shape[0], width, 3))
+    ends[rows, slot] = xj
+    packed = index.segments_cross_fan(origin, ends, valid, longest * (1 + 1e-9))
+    cross = np.zeros(good.shape, dtype=bool)
+    cross[rows, cols] = packed[rows, slot]
     vis &= ~cross
     return vis
