@@ -31,7 +31,7 @@ from scipy.spatial import cKDTree  # noqa: E402
 
 from ibprep import Grid, build_stencils  # noqa: E402
 from ibprep.classify import CellTag  # noqa: E402
-from ibprep.triangles import as_triangles  # noqa: E402
+from ibprep.triangles import extrude_loops  # noqa: E402
 
 
 def sphere_case(cells_per_radius: float, subdivisions: int = 5):
@@ -49,11 +49,11 @@ def wing_case(cells_per_chord: float, span_cells: int = 24, code_t: float = 0.15
     x = 0.5 * (1 - np.cos(np.linspace(0, np.pi, 121)))
     yt = 5 * code_t * (0.2969 * np.sqrt(x) - 0.1260 * x - 0.3516 * x**2 + 0.2843 * x**3 - 0.1036 * x**4)
     loop = np.vstack([np.column_stack([x, yt])[::-1], np.column_stack([x, -yt])[1:-1]])
-    v, f = as_triangles(loop)
     h = 1.0 / cells_per_chord
-    pad = 6 * h
     zc = span_cells * h / 2
-    grid = Grid(lower=(-pad, -0.1 - pad, -zc), upper=(1 + pad, 0.1 + pad, zc), spacing=h)
+    v, f = extrude_loops([loop], half_depth=zc + 8 * h)  # span beyond the grid: a straight wing
+    ny = int(np.ceil(0.1 / h)) + 6
+    grid = Grid(lower=(-6 * h, -ny * h, -zc), upper=(1 + 6 * h, ny * h, zc), spacing=h)
     import igl
 
     c = grid.centres().reshape(-1, 3)

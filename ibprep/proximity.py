@@ -208,6 +208,8 @@ class TriangleIndex:
         of the surface inside this box are bucketed, and queries see only those
         triangles. Choose a box that holds every triangle within the distances
         you ask about (e.g. the grid bounds grown by the stencil reach).
+    check_orientation : bool — flip the normals if the signed volume is negative
+        (default); pass False for an open surface already oriented outward.
 
     Raises
     ------
@@ -220,6 +222,7 @@ class TriangleIndex:
     bucket_size: float
     region_lower: tuple | None = None
     region_upper: tuple | None = None
+    check_orientation: bool = True
     # Derived, filled in __post_init__.
     tri: np.ndarray = field(init=False, repr=False)
     face_normal: np.ndarray = field(init=False, repr=False)
@@ -232,9 +235,6 @@ class TriangleIndex:
     bucket_items: np.ndarray = field(init=False, repr=False)
     tri_centre: np.ndarray = field(init=False, repr=False)
     tri_radius: np.ndarray = field(init=False, repr=False)
-    centre_start: np.ndarray = field(init=False, repr=False)
-    centre_count: np.ndarray = field(init=False, repr=False)
-    centre_items: np.ndarray = field(init=False, repr=False)
 
     def __post_init__(self) -> None:
         v = np.ascontiguousarray(self.vertices, dtype=float)
@@ -247,7 +247,7 @@ class TriangleIndex:
         tri = v[f]  # (nf, 3, 3)
         n = np.cross(tri[:, 1] - tri[:, 0], tri[:, 2] - tri[:, 0])
         volume6 = float(np.einsum("ij,ij->", tri[:, 0], n))
-        if volume6 < 0:
+        if self.check_orientation and volume6 < 0:
             n = -n
         nlen = np.linalg.norm(n, axis=1)
         fn = np.divide(n, nlen[:, None], out=np.zeros_like(n), where=nlen[:, None] > 0)
@@ -307,20 +307,9 @@ class TriangleIndex:
         nb = int(np.prod(dims))
         start = np.searchsorted(bucket, np.arange(nb, dtype=np.int64), side="left")
         stop = np.searchsorted(bucket, np.arange(nb, dtype=np.int64), side="right")
-        # Second bucketing, by centroid only (each triangle once): for ball queries with
-        # bounding spheres, which need no de-duplication.
         centre = tri.mean(axis=1)
         radius = np.linalg.norm(tri - centre[:, None, :], axis=2).max(axis=1) * (1 + 1e-12)
-        cb = np.clip(np.floor((centre[tid] - box_lo) / s).astype(np.int64), 0, dims - 1)
-        cflat = (cb[:, 0] * dims[1] + cb[:, 1]) * dims[2] + cb[:, 2]
-        corder = np.argsort(cflat, kind="stable")
-        cflat = cflat[corder]
-        cstart = np.searchsorted(cflat, np.arange(nb, dtype=np.int64), side="left")
-        cstop = np.searchsorted(cflat, np.arange(nb, dtype=np.int64), side="right")
         for name, value in (
-            ("centre_start", cstart.astype(np.int64)),
-            ("centre_count", (cstop - cstart).astype(np.int64)),
-            ("centre_items", tid[corder].astype(np.int64)),
             ("vertices", v),
             ("faces", f),
             ("bucket_size", s),
@@ -478,11 +467,9 @@ class TriangleIndex:
         p = np.ascontiguousarray(points, dtype=float).reshape(-1, 3)
         s = self.bucket_size
         dims = np.asarray(self.dims)
-        rmax = float(self.tri_radius.max(initial=0.0))
-        reach = radius + rmax
-        lo = np.clip(self._bucket_of(p - reach), 0, dims - 1)
-        hi = np.clip(self._bucket_of(p + reach), 0, dims - 1)
-        far = np.any((p + reach < self.origin) | (p - reach > self.origin + dims * s), axis=1)
+        lo = np.clip(self._bucket_of(p - radius), 0, dims - 1)
+        hi = np.clip(self._bucket_of(p + radius), 0, dims - 1)
+        far = np.any((p + radius < self.origin) | (p - radius > self.origin + dims * s), axis=1)
         ext = hi - lo + 1
         cnt = np.where(far, 0, np.prod(ext, axis=1))
         owner, local = _expand_csr(np.arange(p.shape[0]), np.zeros_like(cnt), cnt)
@@ -491,11 +478,13 @@ class TriangleIndex:
         by = lo[owner, 1] + (local // e[:, 2]) % e[:, 1]
         bz = lo[owner, 2] + local % e[:, 2]
         flat = (bx * dims[1] + by) * dims[2] + bz
-        o_rep, pos = _expand_csr(owner, self.centre_start[flat], self.centre_count[flat])
-        t_rep = self.centre_items[pos]
+        o_rep, pos = _expand_csr(owner, self.bucket_start[flat], self.bucket_count[flat])
+        t_rep = self.bucket_items[pos]
         dc = p[o_rep] - self.tri_centre[t_rep]
         keep = np.einsum("ij,ij->i", dc, dc) <= (radius + self.tri_radius[t_rep]) ** 2
-        return o_rep[keep], t_rep[keep]
+        # A triangle is listed in every bucket its box overlaps: keep one pair of each.
+        key = np.unique(o_rep[keep] * np.int64(self.faces.shape[0]) + t_rep[keep])
+        return key // self.faces.shape[0], key % self.faces.shape[0]
 
     def distance_lower_bound(self, points, max_distance: float) -> np.ndarray:
         """Cheap lower bounds on the distance to the surface, capped at ``max_distance``.

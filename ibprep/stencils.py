@@ -78,7 +78,7 @@ from .classify import CellTag
 from .errors import InputError
 from .grid import Grid
 from .proximity import TriangleIndex
-from .triangles import as_triangles
+from .triangles import _loops_from, as_triangles
 
 __all__ = ["Stencils", "StencilLimits", "StencilSummary", "build_stencils", "load_stencils"]
 
@@ -116,11 +116,17 @@ class StencilLimits:
 
     Notes
     -----
-    The defaults come from the experiment in ``benchmarks/bench_stencils.py
-    --limits`` (see ``benchmarks/RESULTS-stencils.md``): on well-resolved spheres
-    and wings the worst direct-fit stencils stay well inside them, while the
-    degenerate configurations of REFERENCES §3.3 exceed them by orders of
-    magnitude.
+    The defaults come from the experiment ``python benchmarks/bench_stencils.py
+    --limits`` (table in ``benchmarks/RESULTS-stencils.md``). Fluid-side direct
+    fits and image-point ghost cells on spheres (R = 3-20 cells) and a straight
+    NACA 0015 wing (c = 8-32 cells, sharp trailing edge) never exceed condition 17,
+    weight bound 3.6 or a most negative weight of -0.41; direct solid-side
+    Dirichlet fits, which extrapolate into the body, reach condition 110-484,
+    weight bound 15-62 and weights down to -11 at the trailing edge; the degenerate
+    blocks of REFERENCES §3.3 are rank deficient (condition inf). The limits sit at
+    about six times (condition), 1.4 times (weight bound) and 2.5 times (negative
+    weight) the worst well-behaved values, so that the extrapolating stencils
+    are flagged and the well-behaved ones never are.
 
     Raises
     ------
@@ -129,9 +135,9 @@ class StencilLimits:
     """
 
     min_visible: int | None = None
-    max_condition: float = 1.0e3
-    max_weight_bound: float = 8.0
-    min_weight: float = -2.0
+    max_condition: float = 100.0
+    max_weight_bound: float = 5.0
+    min_weight: float = -1.0
 
     def __post_init__(self) -> None:
         if self.min_visible is not None:
@@ -619,6 +625,7 @@ def build_stencils(
     vertices, faces = as_triangles(surface_in_world)
     h = grid.spacing
     planar = grid.is_planar
+    loops = _loops_from(surface_in_world) if planar else None
     two_d = grid.ndim == 2
     shape3 = np.array(grid.shape + ((1,) if two_d else ()), dtype=np.int64)
     lower3 = np.array(grid.lower + ((0.0,) if two_d else ()), dtype=float)
@@ -641,12 +648,19 @@ def build_stencils(
 
     # Only the surface near the grid matters: bucket the part within the stencil reach.
     reach = (opts.max_radius + 3.0) * h
+    oriented = True
+    if loops is not None:
+        # A polygon on a planar grid: index only a band of its side walls around the
+        # layer, in slices about a cell high, so no triangle is much taller than a cell.
+        vertices, faces = _side_band(loops, lower3[2] + 0.5 * h, reach, h)
+        oriented = False
     index = TriangleIndex(
         vertices,
         faces,
         bucket_size=_bucket_size(vertices, faces, h),
         region_lower=tuple(lower3 - reach),
         region_upper=tuple(lower3 + shape3 * h + reach),
+        check_orientation=oriented,
     )
 
     def centres_of(flat):
@@ -754,6 +768,7 @@ def build_stencils(
             ab = ab - gap
     wn = np.where(pad, 0.0, wn)
     bound = np.abs(wn).sum(axis=1) + np.abs(ab) / (h if bc == "neumann" else 1.0)
+    bound[~np.isfinite(cond)] = np.inf  # no fit: unbounded
     minw = np.minimum(wn.min(axis=1), 0.0)
     ok = (
         (nvis >= min_ok_visible)
@@ -780,6 +795,37 @@ def build_stencils(
         min_weight=minw,
         **meta,
     )
+
+
+def _side_band(loops, z0: float, half: float, h: float):
+    """Outward side walls of the prisms over 2-D loops, z in [z0 - half, z0 + half], in slices of about h.
+
+    The walls are open at top and bottom: every query and segment of a planar grid
+    stays in the plane z = z0, farther than ``half`` from those rims.
+    """
+    layers = max(2, int(math.ceil(2.0 * half / h)))
+    zs = z0 + np.linspace(-half, half, layers + 1)
+    verts, faces = [], []
+    offset = 0
+    for loop in loops:
+        p = np.asarray(loop, dtype=float)
+        if np.allclose(p[0], p[-1]):
+            p = p[:-1]
+        area2 = np.sum(p[:, 0] * np.roll(p[:, 1], -1) - np.roll(p[:, 0], -1) * p[:, 1])
+        if area2 < 0:
+            p = p[::-1]
+        mpts = p.shape[0]
+        v = np.column_stack([np.tile(p, (layers + 1, 1)), np.repeat(zs, mpts)])
+        i = np.arange(mpts)
+        j = (i + 1) % mpts
+        lvl = np.arange(layers)[:, None] * mpts
+        a, b = (lvl + i).ravel(), (lvl + j).ravel()
+        c, d = a + mpts, b + mpts
+        f = np.concatenate([np.column_stack([a, b, d]), np.column_stack([a, d, c])])
+        verts.append(v)
+        faces.append(f + offset)
+        offset += v.shape[0]
+    return np.vstack(verts), np.vstack(faces).astype(np.int64)
 
 
 def _bucket_size(vertices: np.ndarray, faces: np.ndarray, h: float) -> float:

@@ -102,7 +102,10 @@ def test_quadratic_reproduced_to_round_off_3d(bc, interface):
     grid, surf, tags = _sphere_case(5, interface)
     st = build_stencils(tags, grid, surf, bc=bc, interface=interface)
     assert len(st) > 100
-    assert st.ok.all()
+    # Direct solid-side Dirichlet fits extrapolate into the body and may exceed the
+    # weight limits (see test_direct_ghost_dirichlet_flagged_where_image_point_is_not).
+    assert st.ok.all() or (interface, bc) == ("solid-side", "dirichlet")
+    assert np.isfinite(st.condition).all()
     err = _reconstruction_error(st, grid, _quadratic)
     assert np.abs(err).max() < REPRO_TOL
 
@@ -140,7 +143,8 @@ def test_quadratic_reproduced_to_round_off_2d(bc, interface):
     # Lancaster & Salkauskas (1981); Levin (1998), REFERENCES §6.4 [memory: high].
     grid, loop, tags = _circle_case(10, interface)
     st = build_stencils(tags, grid, loop, bc=bc, interface=interface)
-    assert st.ok.all()
+    assert st.ok.all() or (interface, bc) == ("solid-side", "dirichlet")
+    assert np.isfinite(st.condition).all()
     assert st.boundary_point.shape == (len(st), 3)
     assert np.all(st.boundary_point[:, 2] == 0.0) and np.all(st.boundary_normal[:, 2] == 0.0)
     err = _reconstruction_error(st, grid, _quadratic)
@@ -179,6 +183,20 @@ def test_image_point_reproduces_linear_fields(bc):
     assert np.all(tags.ravel()[st.cells] == CellTag.INTERFACE)
     err = _reconstruction_error(st, grid, linear)
     assert np.abs(err).max() < REPRO_TOL
+
+
+def test_direct_ghost_dirichlet_flagged_where_image_point_is_not():
+    # Tseng & Ferziger (2003); REFERENCES §3.3 [memory: medium]: extrapolating to a ghost
+    # cell gives large / negative weights; the image point keeps them bounded. The limits
+    # experiment (RESULTS-stencils.md) measured this; here: some direct stencils fail the
+    # default limits on a sphere of radius 10 cells, no image-point stencil does.
+    grid, surf, tags = _sphere_case(10, "solid-side")
+    direct = build_stencils(tags, grid, surf, interface="solid-side")
+    image = build_stencils(tags, grid, surf, interface="solid-side", method="image-point")
+    assert not direct.ok.all()
+    assert direct.weight_bound.max() > 5.0 and direct.min_weight.min() < -1.0
+    assert image.ok.all()
+    assert image.weight_bound.max() < 4.0
 
 
 def test_solid_side_neighbours_are_fluid_only():
