@@ -184,6 +184,53 @@ class ClosestPoints:
     exact: np.ndarray
 
 
+def _pieces(tri: np.ndarray, ids: np.ndarray, target: float):
+    """Split triangles ``ids`` into pieces no longer than about ``target``.
+
+    Returns parent (p,), centre (p, 3), radius (p,), lower (p, 3), upper (p, 3).
+    Each triangle with longest edge L is cut into q² similar pieces, q = ceil(L / target).
+    """
+    t = tri[ids]
+    longest = np.max(np.linalg.norm(t - np.roll(t, 1, axis=1), axis=2), axis=1)
+    q_all = np.maximum(1, np.ceil(longest / target).astype(np.int64))
+    q_all = np.minimum(q_all, 64)  # bounded: a 64 x 64 split of a huge triangle is plenty
+    parents, centres, radii, lows, highs = [], [], [], [], []
+    for q in np.unique(q_all):  # a few distinct split levels, not a loop over triangles
+        sel = np.flatnonzero(q_all == q)
+        i, j = np.meshgrid(np.arange(q), np.arange(q), indexing="ij")
+        up = (i + j <= q - 1)
+        dn = (i + j <= q - 2)
+        iu, ju = i[up], j[up]
+        idn, jdn = i[dn], j[dn]
+        bary = np.concatenate(
+            [
+                np.stack([np.stack([iu, ju], -1), np.stack([iu + 1, ju], -1), np.stack([iu, ju + 1], -1)], 1),
+                np.stack([np.stack([idn + 1, jdn], -1), np.stack([idn + 1, jdn + 1], -1), np.stack([idn, jdn + 1], -1)], 1),
+            ]
+        ) / float(q)  # (P, 3, 2): (v, w) of each piece corner
+        a = t[sel, 0][:, None, None, :]
+        ab = (t[sel, 1] - t[sel, 0])[:, None, None, :]
+        ac = (t[sel, 2] - t[sel, 0])[:, None, None, :]
+        corners = a + bary[None, :, :, 0, None] * ab + bary[None, :, :, 1, None] * ac  # (ns, P, 3, 3)
+        c = corners.mean(axis=2)
+        r = np.linalg.norm(corners - c[:, :, None, :], axis=3).max(axis=2) * (1 + 1e-12)
+        parents.append(np.repeat(ids[sel], bary.shape[0]))
+        centres.append(c.reshape(-1, 3))
+        radii.append(r.reshape(-1))
+        lows.append(corners.min(axis=2).reshape(-1, 3))
+        highs.append(corners.max(axis=2).reshape(-1, 3))
+    if not parents:
+        z = np.zeros((0, 3))
+        return np.zeros(0, np.int64), z, np.zeros(0), z, z
+    return (
+        np.concatenate(parents).astype(np.int64),
+        np.concatenate(centres),
+        np.concatenate(radii),
+        np.concatenate(lows),
+        np.concatenate(highs),
+    )
+
+
 def _expand_csr(owner, starts, counts):
     """Flatten CSR ranges: (owner of each item, item position) for ranges starts[i]:starts[i]+counts[i]."""
     total = int(counts.sum())
@@ -233,8 +280,9 @@ class TriangleIndex:
     bucket_start: np.ndarray = field(init=False, repr=False)
     bucket_count: np.ndarray = field(init=False, repr=False)
     bucket_items: np.ndarray = field(init=False, repr=False)
-    tri_centre: np.ndarray = field(init=False, repr=False)
-    tri_radius: np.ndarray = field(init=False, repr=False)
+    piece_parent: np.ndarray = field(init=False, repr=False)
+    piece_centre: np.ndarray = field(init=False, repr=False)
+    piece_radius: np.ndarray = field(init=False, repr=False)
 
     def __post_init__(self) -> None:
         v = np.ascontiguousarray(self.vertices, dtype=float)
@@ -288,9 +336,14 @@ class TriangleIndex:
             s *= 1.5
             dims = np.floor((box_hi - box_lo) / s).astype(np.int64) + 1
         keep = np.all((hi >= box_lo) & (lo <= box_hi), axis=1)
-        tid = np.flatnonzero(keep)
-        i0 = np.clip(np.floor((lo[tid] - box_lo) / s).astype(np.int64), 0, dims - 1)
-        i1 = np.clip(np.floor((hi[tid] - box_lo) / s).astype(np.int64), 0, dims - 1)
+        # Triangles longer than a bucket are indexed as pieces (a uniform barycentric
+        # split), each with its own box and bounding sphere; exact tests use the parent.
+        parent, pc, pr, plo, phi = _pieces(tri, np.flatnonzero(keep), s)
+        inside = np.all((phi >= box_lo) & (plo <= box_hi), axis=1)
+        parent, pc, pr, plo, phi = parent[inside], pc[inside], pr[inside], plo[inside], phi[inside]
+        tid = np.arange(parent.size)
+        i0 = np.clip(np.floor((plo - box_lo) / s).astype(np.int64), 0, dims - 1)
+        i1 = np.clip(np.floor((phi - box_lo) / s).astype(np.int64), 0, dims - 1)
         ext = i1 - i0 + 1
         cnt = np.prod(ext, axis=1)
         owner, local = _expand_csr(tid, np.zeros_like(cnt), cnt)
@@ -307,8 +360,6 @@ class TriangleIndex:
         nb = int(np.prod(dims))
         start = np.searchsorted(bucket, np.arange(nb, dtype=np.int64), side="left")
         stop = np.searchsorted(bucket, np.arange(nb, dtype=np.int64), side="right")
-        centre = tri.mean(axis=1)
-        radius = np.linalg.norm(tri - centre[:, None, :], axis=2).max(axis=1) * (1 + 1e-12)
         for name, value in (
             ("vertices", v),
             ("faces", f),
@@ -322,8 +373,9 @@ class TriangleIndex:
             ("bucket_start", start.astype(np.int64)),
             ("bucket_count", (stop - start).astype(np.int64)),
             ("bucket_items", items.astype(np.int64)),
-            ("tri_centre", centre),
-            ("tri_radius", radius),
+            ("piece_parent", parent),
+            ("piece_centre", pc),
+            ("piece_radius", pr),
         ):
             object.__setattr__(self, name, value)
 
@@ -422,17 +474,18 @@ class TriangleIndex:
             if q_rep.size == 0:
                 continue
             pq = p[q_rep]
-            dc = pq - self.tri_centre[t_rep]
+            dc = pq - self.piece_centre[t_rep]
             dc = np.sqrt(np.einsum("ij,ij->i", dc, dc))
             starts = np.flatnonzero(np.r_[True, q_rep[1:] != q_rep[:-1]])
             groups = np.diff(np.r_[starts, q_rep.size])
             ub = np.minimum(np.minimum.reduceat(dc, starts), np.sqrt(best_d2[q_rep[starts]]))
-            keep = dc - self.tri_radius[t_rep] <= np.repeat(ub, groups)
+            keep = dc - self.piece_radius[t_rep] <= np.repeat(ub, groups)
             q_rep = q_rep[keep]
             t_rep = t_rep[keep]
             pq = pq[keep]
             if q_rep.size == 0:
                 continue
+            t_rep = self.piece_parent[t_rep]
             tri = self.tri[t_rep]
             q, region = closest_point_on_triangles(pq, tri[:, 0], tri[:, 1], tri[:, 2])
             dq = q - pq
@@ -462,7 +515,8 @@ class TriangleIndex:
         Returns
         -------
         owner : (p,) int64 — point of each pair, non-decreasing.
-        tri : (p,) int64 — triangle of each pair (each triangle at most once per point).
+        piece : (p,) int64 — indexed piece of each pair (each at most once per point);
+            ``piece_parent`` maps it to its triangle.
         """
         p = np.ascontiguousarray(points, dtype=float).reshape(-1, 3)
         s = self.bucket_size
@@ -480,11 +534,12 @@ class TriangleIndex:
         flat = (bx * dims[1] + by) * dims[2] + bz
         o_rep, pos = _expand_csr(owner, self.bucket_start[flat], self.bucket_count[flat])
         t_rep = self.bucket_items[pos]
-        dc = p[o_rep] - self.tri_centre[t_rep]
-        keep = np.einsum("ij,ij->i", dc, dc) <= (radius + self.tri_radius[t_rep]) ** 2
+        dc = p[o_rep] - self.piece_centre[t_rep]
+        keep = np.einsum("ij,ij->i", dc, dc) <= (radius + self.piece_radius[t_rep]) ** 2
         # A triangle is listed in every bucket its box overlaps: keep one pair of each.
-        key = np.unique(o_rep[keep] * np.int64(self.faces.shape[0]) + t_rep[keep])
-        return key // self.faces.shape[0], key % self.faces.shape[0]
+        npc = np.int64(self.piece_parent.size)
+        key = np.unique(o_rep[keep] * npc + t_rep[keep])
+        return key // npc, key % npc
 
     def distance_lower_bound(self, points, max_distance: float) -> np.ndarray:
         """Cheap lower bounds on the distance to the surface, capped at ``max_distance``.
@@ -504,8 +559,8 @@ class TriangleIndex:
         out = np.full(p.shape[0], float(max_distance))
         owner, tri = self.near_pairs(p, max_distance)
         if owner.size:
-            dc = p[owner] - self.tri_centre[tri]
-            lb = np.maximum(np.sqrt(np.einsum("ij,ij->i", dc, dc)) - self.tri_radius[tri], 0.0)
+            dc = p[owner] - self.piece_centre[tri]
+            lb = np.maximum(np.sqrt(np.einsum("ij,ij->i", dc, dc)) - self.piece_radius[tri], 0.0)
             np.minimum.at(out, owner, lb)
         return out
 
@@ -543,15 +598,15 @@ class TriangleIndex:
             t_rep = pt[pos]
             a0 = o[owner[s_rep]]
             dv = e[s_rep] - a0
-            cv = self.tri_centre[t_rep] - a0
+            cv = self.piece_centre[t_rep] - a0
             tt = np.clip(np.einsum("ij,ij->i", cv, dv) / np.maximum(np.einsum("ij,ij->i", dv, dv), 1e-300), 0, 1)
             gap = cv - tt[:, None] * dv
-            close = np.einsum("ij,ij->i", gap, gap) <= self.tri_radius[t_rep] ** 2
+            close = np.einsum("ij,ij->i", gap, gap) <= self.piece_radius[t_rep] ** 2
             s_rep = s_rep[close]
             t_rep = t_rep[close]
             if s_rep.size == 0:
                 continue
-            tri = self.tri[t_rep]
+            tri = self.tri[self.piece_parent[t_rep]]
             crossing = segments_cross_triangles(o[owner[s_rep]], e[s_rep], tri[:, 0], tri[:, 1], tri[:, 2])
             hit[s_rep[crossing]] = True
         return hit
@@ -600,8 +655,9 @@ class TriangleIndex:
             slot = np.arange(tmax)[None, :]
             have = slot < tcount[sl, None]
             TI = np.where(have, pt[np.minimum(tstart[sl, None] + slot, pt.size - 1)], 0)  # (nr, T)
-            N = np.where(have[:, :, None], self.face_normal[TI], 0.0)
-            A0 = self.tri[TI, 0]
+            PT = self.piece_parent[TI]
+            N = np.where(have[:, :, None], self.face_normal[PT], 0.0)
+            A0 = self.tri[PT, 0]
             oo = o[rows]
             s_o = np.einsum("rtk,rtk->rt", oo[:, None, :] - A0, N)  # origin height over each plane
             D = e[rows] - oo[:, None, :]  # (nr, c, 3)
@@ -612,7 +668,7 @@ class TriangleIndex:
             s_j += s_o[:, None, :]
             # Where the segment meets the plane, it must lie within the triangle's sphere:
             # tau = s_o / (s_o - s_j) in [0, 1]; |o + tau D - centre|^2 <= radius^2.
-            C = self.tri_centre[TI] - oo[:, None, :]  # (nr, T, 3)
+            C = self.piece_centre[TI] - oo[:, None, :]  # (nr, T, 3)
             dot = D[:, :, 0, None] * C[:, None, :, 0]
             dot += D[:, :, 1, None] * C[:, None, :, 1]
             dot += D[:, :, 2, None] * C[:, None, :, 2]
@@ -622,14 +678,14 @@ class TriangleIndex:
                 tau = s_o[:, None, :] / (s_o[:, None, :] - s_j)
             possible = (tau >= 0.0) & (tau <= 1.0)  # NaN (in-plane or degenerate) drops out
             tau = np.where(possible, tau, 0.0)
-            possible &= cc - 2.0 * tau * dot + tau * tau * dd <= (self.tri_radius[TI] ** 2 * (1 + 1e-9))[:, None, :]
+            possible &= cc - 2.0 * tau * dot + tau * tau * dd <= (self.piece_radius[TI] ** 2 * (1 + 1e-9))[:, None, :]
             possible &= valid[rows][:, :, None]
             possible &= have[:, None, :]
             r_i, c_i, t_i = np.nonzero(possible)
             if r_i.size == 0:
                 continue
-            tid = TI[r_i, t_i]
-            tri = self.tri[tid]
+            tid = TI[r_i, t_i]  # piece, for the sphere screen
+            tri = self.tri[self.piece_parent[tid]]
             crossing = segments_cross_triangles(oo[r_i], e[rows[r_i], c_i], tri[:, 0], tri[:, 1], tri[:, 2])
             hit[rows[r_i[crossing]], c_i[crossing]] = True
         return hit
@@ -688,13 +744,13 @@ class TriangleIndex:
             # Bounding-sphere screen: the segment must pass within the triangle's sphere.
             a0 = p0[s_rep]
             dv = p1[s_rep] - a0
-            cv = self.tri_centre[t_rep] - a0
+            cv = self.piece_centre[t_rep] - a0
             tt = np.clip(np.einsum("ij,ij->i", cv, dv) / np.maximum(np.einsum("ij,ij->i", dv, dv), 1e-300), 0, 1)
             gap = cv - tt[:, None] * dv
-            close = np.einsum("ij,ij->i", gap, gap) <= self.tri_radius[t_rep] ** 2
+            close = np.einsum("ij,ij->i", gap, gap) <= self.piece_radius[t_rep] ** 2
             s_rep = s_rep[close]
             t_rep = t_rep[close]
-            tri = self.tri[t_rep]
+            tri = self.tri[self.piece_parent[t_rep]]
             crossing = segments_cross_triangles(p0[s_rep], p1[s_rep], tri[:, 0], tri[:, 1], tri[:, 2])
             hit[s_rep[crossing]] = True
         return hit

@@ -86,6 +86,23 @@ def test_segments_cross_matches_parity_of_winding_numbers():
     assert both_in.sum() > 50 and not hit[both_in].any()
 
 
+def test_long_triangles_are_indexed_in_pieces_without_changing_answers():
+    # A plate of two huge triangles with small buckets: pieces must not change the
+    # exact answers (reference: trimesh.proximity.closest_point).
+    plate = trimesh.creation.box(bounds=[[0.0, -3, -3], [0.2, 3, 3]])
+    idx = TriangleIndex(plate.vertices, plate.faces, bucket_size=0.25)
+    assert idx.piece_parent.size > 10 * len(plate.faces)
+    rng = np.random.default_rng(8)
+    p = rng.uniform(-1.0, 1.0, (300, 3))
+    cp = idx.closest(p)
+    _, d_ref, _ = trimesh.proximity.closest_point(plate, p)
+    np.testing.assert_allclose(cp.distance, d_ref, atol=DIST_TOL)
+    assert set(np.unique(cp.face)) <= set(range(len(plate.faces)))
+    hit = idx.segments_cross(p, p + [0.6, 0.0, 0.0])
+    ref = (p[:, 0] < 0.0) & (p[:, 0] + 0.6 >= 0.0) | (p[:, 0] <= 0.2) & (p[:, 0] + 0.6 > 0.2)
+    np.testing.assert_array_equal(hit, ref)
+
+
 def test_segment_through_thin_plate_detected():
     plate = trimesh.creation.box(bounds=[[0.49, -5, -5], [0.51, 5, 5]])
     idx = TriangleIndex(plate.vertices, plate.faces, bucket_size=0.5)
@@ -122,7 +139,7 @@ def test_cheap_distance_lower_bound_is_a_lower_bound():
     assert np.all(lb <= np.minimum(exact, 0.3) + DIST_TOL)
     assert np.all(lb >= 0.0)
     # Tight where the sphere bound is: far points come back at the cap.
-    assert np.all(lb[exact > 0.3 + 2 * idx.tri_radius.max()] == 0.3)
+    assert np.all(lb[exact > 0.3 + 2 * idx.piece_radius.max()] == 0.3)
 
 
 def test_fan_crossing_agrees_with_plain_crossing():
