@@ -185,50 +185,41 @@ class ClosestPoints:
 
 
 def _pieces(tri: np.ndarray, ids: np.ndarray, target: float):
-    """Split triangles ``ids`` into pieces no longer than about ``target``.
+    """Cover triangles ``ids`` with in-plane rectangles about ``target`` across.
 
     Returns parent (p,), centre (p, 3), radius (p,), lower (p, 3), upper (p, 3).
-    Each triangle with longest edge L is cut into q² similar pieces, q = ceil(L / target).
+    In the frame of its longest edge ab (x along ab, y towards c) a triangle lies
+    in [0, L] x [0, w]; that box is cut into ceil(L/target) x ceil(w/target)
+    rectangles, each bounded by its circumscribed sphere and its box. A thin
+    sliver thus becomes a row of short pieces, a small triangle stays one piece.
     """
     t = tri[ids]
-    longest = np.max(np.linalg.norm(t - np.roll(t, 1, axis=1), axis=2), axis=1)
-    q_all = np.maximum(1, np.ceil(longest / target).astype(np.int64))
-    q_all = np.minimum(q_all, 64)  # bounded: a 64 x 64 split of a huge triangle is plenty
-    parents, centres, radii, lows, highs = [], [], [], [], []
-    for q in np.unique(q_all):  # a few distinct split levels, not a loop over triangles
-        sel = np.flatnonzero(q_all == q)
-        i, j = np.meshgrid(np.arange(q), np.arange(q), indexing="ij")
-        up = (i + j <= q - 1)
-        dn = (i + j <= q - 2)
-        iu, ju = i[up], j[up]
-        idn, jdn = i[dn], j[dn]
-        bary = np.concatenate(
-            [
-                np.stack([np.stack([iu, ju], -1), np.stack([iu + 1, ju], -1), np.stack([iu, ju + 1], -1)], 1),
-                np.stack([np.stack([idn + 1, jdn], -1), np.stack([idn + 1, jdn + 1], -1), np.stack([idn, jdn + 1], -1)], 1),
-            ]
-        ) / float(q)  # (P, 3, 2): (v, w) of each piece corner
-        a = t[sel, 0][:, None, None, :]
-        ab = (t[sel, 1] - t[sel, 0])[:, None, None, :]
-        ac = (t[sel, 2] - t[sel, 0])[:, None, None, :]
-        corners = a + bary[None, :, :, 0, None] * ab + bary[None, :, :, 1, None] * ac  # (ns, P, 3, 3)
-        c = corners.mean(axis=2)
-        r = np.linalg.norm(corners - c[:, :, None, :], axis=3).max(axis=2) * (1 + 1e-12)
-        parents.append(np.repeat(ids[sel], bary.shape[0]))
-        centres.append(c.reshape(-1, 3))
-        radii.append(r.reshape(-1))
-        lows.append(corners.min(axis=2).reshape(-1, 3))
-        highs.append(corners.max(axis=2).reshape(-1, 3))
-    if not parents:
-        z = np.zeros((0, 3))
-        return np.zeros(0, np.int64), z, np.zeros(0), z, z
-    return (
-        np.concatenate(parents).astype(np.int64),
-        np.concatenate(centres),
-        np.concatenate(radii),
-        np.concatenate(lows),
-        np.concatenate(highs),
-    )
+    edges = np.stack([t[:, 1] - t[:, 0], t[:, 2] - t[:, 1], t[:, 0] - t[:, 2]], axis=1)
+    k = np.argmax(np.linalg.norm(edges, axis=2), axis=1)  # longest edge starts at corner k
+    rows = np.arange(t.shape[0])
+    a = t[rows, k]
+    b = t[rows, (k + 1) % 3]
+    c = t[rows, (k + 2) % 3]
+    ab = b - a
+    L = np.linalg.norm(ab, axis=1)
+    e1 = np.divide(ab, L[:, None], out=np.zeros_like(ab), where=L[:, None] > 0)
+    ac = c - a
+    perp = ac - np.einsum("ij,ij->i", ac, e1)[:, None] * e1
+    w = np.linalg.norm(perp, axis=1)
+    e2 = np.divide(perp, w[:, None], out=np.zeros_like(perp), where=w[:, None] > 0)
+    q1 = np.clip(np.ceil(L / target).astype(np.int64), 1, 64)
+    q2 = np.clip(np.ceil(w / target).astype(np.int64), 1, 64)
+    cnt = q1 * q2
+    owner, local = _expand_csr(rows, np.zeros_like(cnt), cnt)
+    i = local // q2[owner]
+    j = local % q2[owner]
+    dx = (L / q1)[owner]
+    dy = (w / q2)[owner]
+    centre = a[owner] + ((i + 0.5) * dx)[:, None] * e1[owner] + ((j + 0.5) * dy)[:, None] * e2[owner]
+    radius = 0.5 * np.sqrt(dx * dx + dy * dy) * (1 + 1e-12) + 1e-15 * np.maximum(L[owner], 1.0)
+    half = np.abs(e1[owner]) * (0.5 * dx)[:, None] + np.abs(e2[owner]) * (0.5 * dy)[:, None]
+    half = half * (1 + 1e-12) + 1e-15
+    return ids[owner].astype(np.int64), centre, radius, centre - half, centre + half
 
 
 def _expand_csr(owner, starts, counts):
@@ -283,6 +274,9 @@ class TriangleIndex:
     piece_parent: np.ndarray = field(init=False, repr=False)
     piece_centre: np.ndarray = field(init=False, repr=False)
     piece_radius: np.ndarray = field(init=False, repr=False)
+    centre_start: np.ndarray = field(init=False, repr=False)
+    centre_count: np.ndarray = field(init=False, repr=False)
+    centre_items: np.ndarray = field(init=False, repr=False)
 
     def __post_init__(self) -> None:
         v = np.ascontiguousarray(self.vertices, dtype=float)
@@ -360,7 +354,18 @@ class TriangleIndex:
         nb = int(np.prod(dims))
         start = np.searchsorted(bucket, np.arange(nb, dtype=np.int64), side="left")
         stop = np.searchsorted(bucket, np.arange(nb, dtype=np.int64), side="right")
+        # Second bucketing, each piece once by its centre: ball queries then need no
+        # de-duplication (pieces are about a bucket across, so their spheres are small).
+        cb = np.clip(np.floor((pc - box_lo) / s).astype(np.int64), 0, dims - 1)
+        cflat = (cb[:, 0] * dims[1] + cb[:, 1]) * dims[2] + cb[:, 2]
+        corder = np.argsort(cflat, kind="stable")
+        cflat = cflat[corder]
+        cstart = np.searchsorted(cflat, np.arange(nb, dtype=np.int64), side="left")
+        cstop = np.searchsorted(cflat, np.arange(nb, dtype=np.int64), side="right")
         for name, value in (
+            ("centre_start", cstart.astype(np.int64)),
+            ("centre_count", (cstop - cstart).astype(np.int64)),
+            ("centre_items", corder.astype(np.int64)),
             ("vertices", v),
             ("faces", f),
             ("bucket_size", s),
@@ -505,7 +510,7 @@ class TriangleIndex:
             best_region[qw] = region[sel]
 
     def near_pairs(self, points, radius: float):
-        """Triangles whose bounding sphere meets the ball of ``radius`` around each point.
+        """Pieces whose bounding sphere meets the ball of ``radius`` around each point.
 
         Parameters
         ----------
@@ -521,9 +526,10 @@ class TriangleIndex:
         p = np.ascontiguousarray(points, dtype=float).reshape(-1, 3)
         s = self.bucket_size
         dims = np.asarray(self.dims)
-        lo = np.clip(self._bucket_of(p - radius), 0, dims - 1)
-        hi = np.clip(self._bucket_of(p + radius), 0, dims - 1)
-        far = np.any((p + radius < self.origin) | (p - radius > self.origin + dims * s), axis=1)
+        reach = radius + float(self.piece_radius.max(initial=0.0))
+        lo = np.clip(self._bucket_of(p - reach), 0, dims - 1)
+        hi = np.clip(self._bucket_of(p + reach), 0, dims - 1)
+        far = np.any((p + reach < self.origin) | (p - reach > self.origin + dims * s), axis=1)
         ext = hi - lo + 1
         cnt = np.where(far, 0, np.prod(ext, axis=1))
         owner, local = _expand_csr(np.arange(p.shape[0]), np.zeros_like(cnt), cnt)
@@ -532,14 +538,11 @@ class TriangleIndex:
         by = lo[owner, 1] + (local // e[:, 2]) % e[:, 1]
         bz = lo[owner, 2] + local % e[:, 2]
         flat = (bx * dims[1] + by) * dims[2] + bz
-        o_rep, pos = _expand_csr(owner, self.bucket_start[flat], self.bucket_count[flat])
-        t_rep = self.bucket_items[pos]
+        o_rep, pos = _expand_csr(owner, self.centre_start[flat], self.centre_count[flat])
+        t_rep = self.centre_items[pos]
         dc = p[o_rep] - self.piece_centre[t_rep]
         keep = np.einsum("ij,ij->i", dc, dc) <= (radius + self.piece_radius[t_rep]) ** 2
-        # A triangle is listed in every bucket its box overlaps: keep one pair of each.
-        npc = np.int64(self.piece_parent.size)
-        key = np.unique(o_rep[keep] * npc + t_rep[keep])
-        return key // npc, key % npc
+        return o_rep[keep], t_rep[keep]
 
     def distance_lower_bound(self, points, max_distance: float) -> np.ndarray:
         """Cheap lower bounds on the distance to the surface, capped at ``max_distance``.
@@ -678,7 +681,12 @@ class TriangleIndex:
                 tau = s_o[:, None, :] / (s_o[:, None, :] - s_j)
             possible = (tau >= 0.0) & (tau <= 1.0)  # NaN (in-plane or degenerate) drops out
             tau = np.where(possible, tau, 0.0)
-            possible &= cc - 2.0 * tau * dot + tau * tau * dd <= (self.piece_radius[TI] ** 2 * (1 + 1e-9))[:, None, :]
+            # |o + tau D - centre|^2 = cc - 2 tau dot + tau^2 dd, in place.
+            q = tau * dd
+            q -= 2.0 * dot
+            q *= tau
+            q += cc
+            possible &= q <= (self.piece_radius[TI] ** 2 * (1 + 1e-9))[:, None, :]
             possible &= valid[rows][:, :, None]
             possible &= have[:, None, :]
             r_i, c_i, t_i = np.nonzero(possible)
