@@ -271,6 +271,7 @@ class TriangleIndex:
     bucket_start: np.ndarray = field(init=False, repr=False)
     bucket_count: np.ndarray = field(init=False, repr=False)
     bucket_items: np.ndarray = field(init=False, repr=False)
+    piece_witness: np.ndarray = field(init=False, repr=False)
     piece_parent: np.ndarray = field(init=False, repr=False)
     piece_centre: np.ndarray = field(init=False, repr=False)
     piece_radius: np.ndarray = field(init=False, repr=False)
@@ -333,8 +334,12 @@ class TriangleIndex:
         # Triangles longer than a bucket are indexed as pieces (a uniform barycentric
         # split), each with its own box and bounding sphere; exact tests use the parent.
         parent, pc, pr, plo, phi = _pieces(tri, np.flatnonzero(keep), s)
+        # A witness per piece: the parent's point nearest the piece centre. Rectangles of
+        # the cover that miss the triangle (witness outside the sphere) are dropped.
+        wq, _ = closest_point_on_triangles(pc, tri[parent, 0], tri[parent, 1], tri[parent, 2])
         inside = np.all((phi >= box_lo) & (plo <= box_hi), axis=1)
-        parent, pc, pr, plo, phi = parent[inside], pc[inside], pr[inside], plo[inside], phi[inside]
+        inside &= np.einsum("ij,ij->i", wq - pc, wq - pc) <= pr * pr
+        parent, pc, pr, plo, phi, wq = (x[inside] for x in (parent, pc, pr, plo, phi, wq))
         tid = np.arange(parent.size)
         i0 = np.clip(np.floor((plo - box_lo) / s).astype(np.int64), 0, dims - 1)
         i1 = np.clip(np.floor((phi - box_lo) / s).astype(np.int64), 0, dims - 1)
@@ -378,6 +383,7 @@ class TriangleIndex:
             ("bucket_start", start.astype(np.int64)),
             ("bucket_count", (stop - start).astype(np.int64)),
             ("bucket_items", items.astype(np.int64)),
+            ("piece_witness", wq),
             ("piece_parent", parent),
             ("piece_centre", pc),
             ("piece_radius", pr),
@@ -481,10 +487,14 @@ class TriangleIndex:
             pq = p[q_rep]
             dc = pq - self.piece_centre[t_rep]
             dc = np.sqrt(np.einsum("ij,ij->i", dc, dc))
+            # Upper bound on each query's distance: its nearest piece witness (a point on
+            # the surface); lower bound per pair: distance to the piece's sphere.
+            dg = pq - self.piece_witness[t_rep]
+            dg = np.sqrt(np.einsum("ij,ij->i", dg, dg))
             starts = np.flatnonzero(np.r_[True, q_rep[1:] != q_rep[:-1]])
             groups = np.diff(np.r_[starts, q_rep.size])
-            ub = np.minimum(np.minimum.reduceat(dc, starts), np.sqrt(best_d2[q_rep[starts]]))
-            keep = dc - self.piece_radius[t_rep] <= np.repeat(ub, groups)
+            ub = np.minimum(np.minimum.reduceat(dg, starts), np.sqrt(best_d2[q_rep[starts]]))
+            keep = dc - self.piece_radius[t_rep] <= np.repeat(ub, groups) * (1 + 1e-12)
             q_rep = q_rep[keep]
             t_rep = t_rep[keep]
             pq = pq[keep]
