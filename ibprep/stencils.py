@@ -829,9 +829,13 @@ def _side_band(loops, z0: float, half: float, h: float):
 
 
 def _bucket_size(vertices: np.ndarray, faces: np.ndarray, h: float) -> float:
-    """Hash bucket edge: about two cells, but no smaller than the typical triangle."""
-    e = np.linalg.norm(vertices[faces[:, 1]] - vertices[faces[:, 0]], axis=1)
-    return float(max(2.0 * h, np.median(e)))
+    """Hash bucket edge: twice the median triangle edge, kept between one and two cells.
+
+    Long triangles are indexed in bucket-sized pieces, so the bucket follows the
+    grid (the stencil reach is a few cells) more than the mesh.
+    """
+    e = np.linalg.norm(vertices[faces] - vertices[np.roll(faces, 1, axis=1)], axis=2)
+    return float(np.clip(2.0 * np.median(e), h, 2.0 * h))
 
 
 def _visible(index, good, cflat, origin, origin_dist, centres_of, r, h):
