@@ -608,7 +608,9 @@ def build_stencils(
     InputError
         Unknown options, tags not matching the grid, or a bad surface.
     """
-    m = 6 if grid.is_planar else 10 if isinstance(grid, Grid) else 10
+    if not isinstance(grid, Grid):
+        raise InputError(f"grid must be an ibprep.Grid, got {type(grid).__name__}")
+    m = 6 if grid.is_planar else 10
     opts = _Options(
         bc=bc,
         interface=interface,
@@ -683,17 +685,14 @@ def build_stencils(
             centre[:, 2] = x0[:, 2]
         anchor = np.clip(np.floor((centre - lower3) / h).astype(np.int64), 0, shape3 - 1)
         origin = centre
-        origin_dist = np.zeros(n)  # conservative: IP may be close to the surface
     elif interface == "solid-side":
         centre = x0
         anchor = ijk0
         origin = bpt + _NUDGE * h * nrm
-        origin_dist = np.zeros(n)
     else:
         centre = x0
         anchor = ijk0
         origin = x0
-        origin_dist = cp.distance
 
     # Which tags may serve as neighbours.
     allowed = np.zeros(3, dtype=bool)
@@ -714,7 +713,7 @@ def build_stencils(
         inside = np.all((cand >= 0) & (cand < shape3), axis=2)
         cflat = np.ravel_multi_index(tuple(np.clip(cand, 0, shape3 - 1).transpose(2, 0, 1)), tuple(shape3))
         good = inside & allowed[flat_tags[cflat]] & (cflat != cells[active, None])
-        vis = _visible(index, good, cflat, origin[active], origin_dist[active], centres_of, r, h)
+        vis = _visible(index, good, cflat, origin[active], centres_of)
         count = vis.sum(axis=1)
         done = (count >= opts.min_visible) | last
         rows = active[done]
@@ -777,12 +776,9 @@ def build_stencils(
         & (bound <= lim.max_weight_bound)
         & (minw >= lim.min_weight)
     )
-    if two_d:
-        cells_out = cells  # flat index over (nx, ny, 1) equals that over (nx, ny)
-    else:
-        cells_out = cells
+    # On 2-D grids flat indices over (nx, ny, 1) equal those over (nx, ny).
     return Stencils(
-        cells=cells_out,
+        cells=cells,
         neighbours=nb,
         weights=wn,
         boundary_point=bpt,
@@ -838,7 +834,7 @@ def _bucket_size(vertices: np.ndarray, faces: np.ndarray, h: float) -> float:
     return float(np.clip(2.0 * np.median(e), h, 2.0 * h))
 
 
-def _visible(index, good, cflat, origin, origin_dist, centres_of, r, h):
+def _visible(index, good, cflat, origin, centres_of):
     """(na, no) bool: candidate is allowed and its segment from the origin does not cross the surface."""
     vis = good.copy()
     rows, cols = np.nonzero(good)

@@ -462,3 +462,33 @@ def test_batched_solve_matches_numpy_pinv_and_cond():
     ref = np.linalg.pinv(B)[:, 0, :] * sw
     np.testing.assert_allclose(a, ref, atol=1e-11)
     np.testing.assert_allclose(cond, np.linalg.cond(B), rtol=1e-6)
+
+
+def test_interface_neighbours_can_be_excluded():
+    # Option: fluid-side stencils built from plain fluid cells only; still quadratic-exact
+    # (Lancaster & Salkauskas 1981; REFERENCES §6.4 [memory: high]).
+    grid, surf, tags = _sphere_case(5)
+    st = build_stencils(tags, grid, surf, interface_neighbours=False, bc="neumann")
+    used = st.neighbours[st.neighbours >= 0]
+    assert np.all(tags.ravel()[used] == CellTag.FLUID)
+    assert np.abs(_reconstruction_error(st, grid, _quadratic)).max() < REPRO_TOL
+    default = build_stencils(tags, grid, surf)
+    assert np.any(tags.ravel()[default.neighbours[default.neighbours >= 0]] == CellTag.INTERFACE)
+
+
+def test_neighbour_cap_and_growth():
+    grid, surf, tags = _sphere_case(5)
+    st = build_stencils(tags, grid, surf, max_neighbours=24, min_visible=24)
+    assert st.neighbours.shape[1] == 24 and (st.n_visible == 24).all()
+    assert np.all((st.neighbours >= 0) == (np.arange(24) < st.n_visible[:, None]))
+
+
+def test_grid_must_be_a_grid():
+    with pytest.raises(InputError, match="grid must be an ibprep.Grid, got dict"):
+        build_stencils(np.zeros((2, 2), np.uint8), {}, _circle_loop())
+
+
+def test_no_interface_cells_gives_empty_table():
+    grid, loop, tags = _circle_case(4)
+    st = build_stencils(np.zeros_like(tags), grid, loop)
+    assert len(st) == 0 and st.summary().count == 0 and st.summary().worst_condition_cell == -1
