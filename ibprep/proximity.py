@@ -1,11 +1,14 @@
 """Closest points, pseudo-normals and segment crossings on triangle surfaces.
 
 These are the geometric kernels of the stencil builder, over plain
-``(vertices, faces)`` arrays. A :class:`TriangleIndex` buckets the triangles on
-a coarse uniform hash grid (compressed-sparse-row lists built with
-``argsort``/``searchsorted``), so that every query only visits the triangles of
-a few nearby buckets; all per-pair work is branch-free numpy over flat arrays
-of (query, triangle) pairs.
+``(vertices, faces)`` arrays. A :class:`TriangleIndex` covers every triangle
+with in-plane pieces about one bucket across (a long sliver becomes a row of
+short pieces, each with a bounding sphere and a witness point on the
+triangle) and buckets the pieces on a uniform hash grid (compressed-sparse-row
+lists built with ``argsort``/``searchsorted``), so that every query only visits
+a few nearby buckets. Cheap sphere screens discard most (query, piece) pairs;
+the exact tests run on the parent triangles of the survivors. All per-pair work
+is branch-free numpy over flat arrays of pairs.
 
 * Closest point on a triangle: Ericson (2005), *Real-Time Collision
   Detection*, §5.1.5, evaluated for all Voronoi regions at once.
@@ -233,7 +236,7 @@ def _expand_csr(owner, starts, counts):
 
 @dataclass(frozen=True, eq=False)
 class TriangleIndex:
-    """A closed triangle surface bucketed on a uniform hash grid.
+    """A closed triangle surface, cut into pieces and bucketed on a uniform hash grid.
 
     Parameters
     ----------

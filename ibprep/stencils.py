@@ -32,11 +32,10 @@ Choices (documented defaults)
 * Visibility: the segment from the fitting origin to the neighbour centre must
   not meet the surface (fluid-side: from the cell centre; solid-side: from the
   boundary point nudged 1e-6 h into the fluid; image point: from the image
-  point). Per stencil the triangles near the origin are gathered once; a batched
-  matrix product gives every segment end's height over every such triangle's
-  plane, and a bounding-sphere distance screens the rest, so only (segment,
-  triangle) pairs that straddle a plane and pass near the triangle reach the
-  exact Möller–Trumbore test. (A 1-Lipschitz screen, d0 + dj > L, with lower
+  point). Per stencil the triangle pieces near the origin are gathered once;
+  dense (stencil, candidate, piece) arrays give each segment's crossing
+  parameter with each piece's plane, and only segments that meet a plane
+  inside the piece's bounding sphere reach the exact Möller–Trumbore test. (A 1-Lipschitz screen, d0 + dj > L, with lower
   bounds on the candidates' distances was measured slower than these dense
   screens and is not used; :meth:`TriangleIndex.distance_lower_bound` keeps it
   available.)
@@ -61,8 +60,16 @@ Tseng & Ferziger 2003; Mittal et al. 2008): the image point IP = 2 BI - G of the
 ghost cell G through its boundary intercept BI is reconstructed by the same WLS
 fit (fluid neighbours around IP plus the boundary row), then
 ``phi_G = 2 g - phi_IP`` (Dirichlet) or ``phi_G = phi_IP - |G - IP| g`` (Neumann).
-This is second-order (exact for fields linear along the normal), not
-quadratic-exact like the direct fit.
+The Dirichlet variant is second order (exact for fields linear along the
+normal), not quadratic-exact like the direct fit; the Neumann variant is a
+central difference about BI and measured third order on spheres. A ghost cell
+whose image point falls inside the body (a body thinner than the ghost layer)
+sees no fluid and is flagged not ok.
+
+Figures per stencil: ``condition``; ``n_visible``; ``weight_bound`` =
+Σ|w| + |w_b| (|w_b|/h for Neumann), a Lebesgue-type amplification factor;
+``min_weight``, the most negative neighbour weight. ``ok`` applies
+:class:`StencilLimits` (defaults justified in its docstring) to them.
 """
 
 from __future__ import annotations
