@@ -434,10 +434,26 @@ class TriangleIndex:
         lower = np.zeros(n)
         if n == 0:
             return ClosestPoints(best_q, lower, np.zeros((0, 3)), best_face, exact)
-        qb = self._bucket_of(p)
         s = self.bucket_size
+        # Fast path: pieces whose spheres meet the ball of one bucket around each point;
+        # exact wherever the best distance found is within that ball.
+        first = min(float(max_distance), s)
+        owner, piece = self.near_pairs(p, first)
+        s0 = 0
+        while s0 < owner.size:  # chunks of whole queries
+            stop = min(owner.size, s0 + _PAIR_CHUNK)
+            if stop < owner.size:
+                stop = int(np.searchsorted(owner, owner[stop], side="left"))
+                if stop <= s0:
+                    stop = int(np.searchsorted(owner, owner[s0], side="right"))
+            self._evaluate(p, owner[s0:stop], piece[s0:stop], best_d2, best_face, best_q, best_region)
+            s0 = stop
+        qb = self._bucket_of(p)
         q_max = int(max(self.dims)) + int(np.max(np.abs(qb - np.clip(qb, 0, np.asarray(self.dims) - 1)))) + 1
-        active = np.arange(n)
+        fast = np.sqrt(best_d2) <= first
+        exact[fast] = True
+        lower[~fast & (first >= max_distance)] = first
+        active = np.flatnonzero(~fast & (first < max_distance))
         ring = 0
         while active.size and ring <= q_max:
             if ring == 0:
@@ -475,18 +491,24 @@ class TriangleIndex:
         return ClosestPoints(point=best_q, distance=dist, normal=normal, face=face, exact=exact)
 
     def _search(self, p, qidx, qbucket, offsets, best_d2, best_face, best_q, best_region):
-        """Update the running best for queries qidx from the buckets at the given offsets.
-
-        Pairs are first screened with the triangles' bounding spheres: a triangle whose
-        sphere lies farther than the nearest centroid (an upper bound on the distance)
-        cannot hold the closest point, so Ericson's test runs on the few survivors.
-        """
+        """Update the running best for queries qidx from the buckets at the given offsets."""
         per_query = max(1.0, float(self.bucket_count.mean()) * offsets.shape[0] * 4)
         step = max(1, int(_PAIR_CHUNK / per_query))
         for s0 in range(0, qidx.size, step):  # chunks of many thousand queries
             q_rep, t_rep = self._pairs_for_offsets(qidx[s0 : s0 + step], qbucket[s0 : s0 + step], offsets)
+            self._evaluate(p, q_rep, t_rep, best_d2, best_face, best_q, best_region)
+
+    def _evaluate(self, p, q_rep, t_rep, best_d2, best_face, best_q, best_region):
+        """Update the running best from (query, piece) pairs grouped by query.
+
+        Pairs are first screened with the pieces' bounding spheres: a piece whose
+        sphere lies farther than the nearest witness point (an upper bound on the
+        distance) cannot hold the closest point, so Ericson's test runs on the few
+        survivors, on the parent triangles.
+        """
+        if True:  # keeps the body's indentation of the pair loop it came from
             if q_rep.size == 0:
-                continue
+                return
             pq = p[q_rep]
             dc = pq - self.piece_centre[t_rep]
             dc = np.sqrt(np.einsum("ij,ij->i", dc, dc))
@@ -502,7 +524,7 @@ class TriangleIndex:
             t_rep = t_rep[keep]
             pq = pq[keep]
             if q_rep.size == 0:
-                continue
+                return
             t_rep = self.piece_parent[t_rep]
             tri = self.tri[t_rep]
             q, region = closest_point_on_triangles(pq, tri[:, 0], tri[:, 1], tri[:, 2])
