@@ -713,14 +713,22 @@ def build_stencils(
     used_radius = np.zeros(n)
     active = np.arange(n)
     r = opts.radius
+    # Offsets sorted by length: each round's candidates are a prefix of this list, so a
+    # grown round only tests the new offsets and keeps the earlier answers.
+    all_offs = _offsets(opts.max_radius, planar)
+    all_len2 = (all_offs * all_offs).sum(axis=1)
+    prev_vis = np.zeros((n, 0), dtype=bool)
     while active.size:
         last = r >= opts.max_radius - 1e-9
-        offs = _offsets(r, planar)
+        n_off = int(np.count_nonzero(all_len2 <= r * r + 1e-9))
+        offs = all_offs[:n_off]
         cand = anchor[active, None, :] + offs[None, :, :]  # (na, no, 3)
         inside = np.all((cand >= 0) & (cand < shape3), axis=2)
         cflat = np.ravel_multi_index(tuple(np.clip(cand, 0, shape3 - 1).transpose(2, 0, 1)), tuple(shape3))
         good = inside & allowed[flat_tags[cflat]] & (cflat != cells[active, None])
-        vis = _visible(index, good, cflat, origin[active], centres_of)
+        n_old = prev_vis.shape[1]
+        vis_new = _visible(index, good[:, n_old:], cflat[:, n_old:], origin[active], centres_of)
+        vis = np.concatenate([prev_vis, vis_new], axis=1)
         count = vis.sum(axis=1)
         done = (count >= opts.min_visible) | last
         rows = active[done]
@@ -738,6 +746,7 @@ def build_stencils(
             nvis[rows] = take.sum(axis=1)
             used_radius[rows] = r
         active = active[~done]
+        prev_vis = vis[~done]
         r = min(r + _RADIUS_STEP, opts.max_radius)
 
     k = int(max(1, nvis.max()))
