@@ -602,53 +602,6 @@ class TriangleIndex:
             np.minimum.at(out, owner, lb)
         return out
 
-    def segments_cross_from(self, origins, owner, ends, reach: float) -> np.ndarray:
-        """Whether segments from shared origins cross the surface.
-
-        Parameters
-        ----------
-        origins : (no, 3) float — metres; segment starts, shared by many segments.
-        owner : (n,) int — origin of each segment.
-        ends : (n, 3) float — metres.
-        reach : float — metres; no segment is longer than this.
-
-        Returns
-        -------
-        (n,) bool — as :meth:`segments_cross`.
-        """
-        o = np.ascontiguousarray(origins, dtype=float).reshape(-1, 3)
-        owner = np.asarray(owner, dtype=np.int64)
-        e = np.ascontiguousarray(ends, dtype=float).reshape(-1, 3)
-        hit = np.zeros(owner.size, dtype=bool)
-        if owner.size == 0:
-            return hit
-        used = np.unique(owner)
-        po, pt = self.near_pairs(o[used], reach)  # triangles near each used origin, grouped
-        tcount = np.bincount(po, minlength=used.size)
-        tstart = np.cumsum(tcount) - tcount
-        slot = np.searchsorted(used, owner)
-        per_seg = max(1.0, float(tcount.mean()))
-        step = max(1, int(_PAIR_CHUNK / per_seg))
-        for s0 in range(0, owner.size, step):  # chunks of many thousand segments
-            seg = np.arange(s0, min(owner.size, s0 + step))
-            sl = slot[seg]
-            s_rep, pos = _expand_csr(seg, tstart[sl], tcount[sl])
-            t_rep = pt[pos]
-            a0 = o[owner[s_rep]]
-            dv = e[s_rep] - a0
-            cv = self.piece_centre[t_rep] - a0
-            tt = np.clip(np.einsum("ij,ij->i", cv, dv) / np.maximum(np.einsum("ij,ij->i", dv, dv), 1e-300), 0, 1)
-            gap = cv - tt[:, None] * dv
-            close = np.einsum("ij,ij->i", gap, gap) <= self.piece_radius[t_rep] ** 2
-            s_rep = s_rep[close]
-            t_rep = t_rep[close]
-            if s_rep.size == 0:
-                continue
-            tri = self.tri[self.piece_parent[t_rep]]
-            crossing = segments_cross_triangles(o[owner[s_rep]], e[s_rep], tri[:, 0], tri[:, 1], tri[:, 2])
-            hit[s_rep[crossing]] = True
-        return hit
-
     def segments_cross_fan(self, origins, ends, valid, reach: float) -> np.ndarray:
         """Whether segments fanning out from one origin per row cross the surface.
 
@@ -689,7 +642,6 @@ class TriangleIndex:
         for s0 in range(0, rows_used.size, step):  # chunks of many thousand rows
             sl = slice(s0, s0 + step)
             rows = rows_used[sl]
-            nr = rows.size
             slot = np.arange(tmax)[None, :]
             have = slot < tcount[sl, None]
             TI = np.where(have, pt[np.minimum(tstart[sl, None] + slot, pt.size - 1)], 0)  # (nr, T)
