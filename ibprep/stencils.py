@@ -699,7 +699,9 @@ def build_stencils(
     else:
         centre = x0
         anchor = ijk0
-        origin = x0
+        # A cell centre lying on the surface sees along the surface: look from just off it.
+        on_surface = cp.distance < _NUDGE * h
+        origin = np.where(on_surface[:, None], bpt + _NUDGE * h * nrm, x0)
 
     # Which tags may serve as neighbours.
     allowed = np.zeros(3, dtype=bool)

@@ -492,3 +492,18 @@ def test_no_interface_cells_gives_empty_table():
     grid, loop, tags = _circle_case(4)
     st = build_stencils(np.zeros_like(tags), grid, loop)
     assert len(st) == 0 and st.summary().count == 0 and st.summary().worst_condition_cell == -1
+
+
+def test_cell_centre_on_the_surface_still_sees_its_fluid():
+    # A wall through a plane of cell centres (x = 4.5): those cells are interface cells
+    # lying on the surface; they must still see the fluid side and reproduce quadratics
+    # (Lancaster & Salkauskas 1981; REFERENCES §6.4 [memory: high]).
+    grid = Grid(lower=(0, 0, 0), upper=(10, 6, 6), spacing=1.0)
+    v, f = _far_box((-20, -20, -20), (4.5, 30, 30))
+    tags = np.zeros(grid.shape, np.uint8)
+    tags[:4] = CellTag.SOLID
+    tags[4] = CellTag.INTERFACE
+    st = build_stencils(tags, grid, (v, f), bc="neumann")
+    assert len(st) == 36 and st.ok.all()
+    np.testing.assert_allclose(st.boundary_normal, np.broadcast_to([1.0, 0, 0], (36, 3)), atol=1e-12)
+    assert np.abs(_reconstruction_error(st, grid, _quadratic)).max() < REPRO_TOL
