@@ -34,7 +34,10 @@ from .kinematics import (
     flow_numbers,
     load_waveform_table,
 )
+from .preflight import Check, Report, preflight
 from .sizing import propose_boxes, swept_envelope
+from .stencils import StencilLimits, Stencils, StencilSummary, build_stencils, load_stencils
+from .sweep import StepResult, sweep
 
 __version__ = "0.1.0.dev0"
 
@@ -42,6 +45,7 @@ __all__ = [
     "BodyCase",
     "Case",
     "CellTag",
+    "Check",
     "CheckLimits",
     "FlowNumbers",
     "Grid",
@@ -51,31 +55,40 @@ __all__ = [
     "MissingDependencyError",
     "Motion",
     "NestedGrid",
+    "Report",
     "Section",
     "Sine",
     "SmoothSquareWave",
+    "StencilLimits",
+    "StencilSummary",
+    "Stencils",
+    "StepResult",
     "SurfaceReport",
     "Tabulated",
     "Transition",
     "Waveform",
     "WaveformTable",
+    "build_stencils",
     "check_surface",
     "classify",
     "classify_levels",
     "flow_numbers",
     "label_bodies",
     "load_case",
+    "load_stencils",
     "load_surface",
     "load_waveform_table",
     "local_thickness",
     "make_wing",
     "naca4",
     "parse_case",
+    "preflight",
     "propose_boxes",
     "refine",
     "save_surface",
     "step_tags",
     "surface_markers",
+    "sweep",
     "swept_envelope",
     "thin_regions",
 ]

@@ -1,0 +1,156 @@
+"""Tests for ibprep.proximity: closest points, pseudo-normals, segment crossings."""
+
+import igl
+import numpy as np
+import pytest
+import trimesh
+
+from ibprep import InputError
+from ibprep.proximity import TriangleIndex, closest_point_on_triangles, segments_cross_triangles
+
+# Distances agree with trimesh to this (metres, bodies of size ~1): round-off only.
+DIST_TOL = 1e-12
+
+
+def _annulus():
+    # Non-convex, watertight: an annulus (thick ring) has concave inner walls.
+    m = trimesh.creation.annulus(r_min=0.4, r_max=1.0, height=0.6, sections=24)
+    assert m.is_watertight
+    return m
+
+
+def test_closest_point_matches_trimesh():
+    # Reference library: trimesh.proximity.closest_point (distances; points where unique).
+    m = _annulus()
+    rng = np.random.default_rng(1)
+    p = rng.uniform(-1.3, 1.3, (600, 3))
+    idx = TriangleIndex(m.vertices, m.faces, bucket_size=0.15)
+    cp = idx.closest(p)
+    q_ref, d_ref, _ = trimesh.proximity.closest_point(m, p)
+    assert cp.exact.all()
+    np.testing.assert_allclose(cp.distance, d_ref, atol=DIST_TOL)
+    np.testing.assert_allclose(np.linalg.norm(cp.point - p, axis=1), d_ref, atol=DIST_TOL)
+
+
+def test_pseudo_normal_sign_matches_winding_number():
+    # Bærentzen & Aanæs (2005): (p - closest) . pseudo-normal > 0 exactly outside, also when
+    # the closest point is on an edge or a vertex. Reference: libigl igl.winding_number.
+    m = _annulus()
+    rng = np.random.default_rng(2)
+    near_vertices = np.repeat(m.vertices, 4, axis=0) + rng.normal(scale=0.02, size=(4 * len(m.vertices), 3))
+    edges = m.vertices[m.edges_unique].mean(axis=1)
+    near_edges = edges + rng.normal(scale=0.02, size=edges.shape)
+    p = np.vstack([near_vertices, near_edges])
+    cp = TriangleIndex(m.vertices, m.faces, bucket_size=0.15).closest(p)
+    side = np.einsum("ij,ij->i", p - cp.point, cp.normal)
+    wn = igl.winding_number(m.vertices, m.faces.astype(np.int64), p)
+    keep = np.abs(side) > 1e-12
+    assert keep.mean() > 0.99
+    np.testing.assert_array_equal(side[keep] > 0, wn[keep] < 0.5)
+    np.testing.assert_allclose(np.linalg.norm(cp.normal, axis=1), 1.0, atol=1e-12)
+
+
+def test_inward_oriented_mesh_still_gives_outward_normals():
+    m = trimesh.creation.icosphere(subdivisions=2)
+    idx = TriangleIndex(m.vertices, m.faces[:, ::-1], bucket_size=0.3)
+    cp = idx.closest(np.array([[2.0, 0.1, 0.2]]))
+    assert cp.normal[0, 0] > 0.9
+
+
+def test_lower_bound_mode_never_exceeds_true_distance():
+    m = _annulus()
+    rng = np.random.default_rng(3)
+    p = rng.uniform(-2.5, 2.5, (400, 3))
+    idx = TriangleIndex(m.vertices, m.faces, bucket_size=0.1)
+    exact = idx.closest(p).distance
+    lb = idx.closest(p, max_distance=0.25)
+    assert np.all(lb.distance <= exact + DIST_TOL)
+    np.testing.assert_allclose(lb.distance[lb.exact], exact[lb.exact], atol=DIST_TOL)
+    assert np.all(lb.distance[~lb.exact] >= 0.25 - DIST_TOL)
+
+
+def test_segments_cross_matches_parity_of_winding_numbers():
+    # A segment between the two sides of a closed surface crosses it (odd count): reference
+    # libigl igl.winding_number for the sides; same-side segments over a convex body never cross.
+    m = trimesh.creation.icosphere(subdivisions=3)
+    rng = np.random.default_rng(4)
+    a = rng.uniform(-1.4, 1.4, (3000, 3))
+    b = rng.uniform(-1.4, 1.4, (3000, 3))
+    idx = TriangleIndex(m.vertices, m.faces, bucket_size=0.2)
+    hit = idx.segments_cross(a, b)
+    wa = igl.winding_number(m.vertices, m.faces.astype(np.int64), a) > 0.5
+    wb = igl.winding_number(m.vertices, m.faces.astype(np.int64), b) > 0.5
+    assert np.all(hit[wa != wb])
+    # Both inside a convex body: no crossing.
+    both_in = wa & wb
+    assert both_in.sum() > 50 and not hit[both_in].any()
+
+
+def test_long_triangles_are_indexed_in_pieces_without_changing_answers():
+    # A plate of two huge triangles with small buckets: pieces must not change the
+    # exact answers (reference: trimesh.proximity.closest_point).
+    plate = trimesh.creation.box(bounds=[[0.0, -3, -3], [0.2, 3, 3]])
+    idx = TriangleIndex(plate.vertices, plate.faces, bucket_size=0.25)
+    assert idx.piece_parent.size > 10 * len(plate.faces)
+    rng = np.random.default_rng(8)
+    p = rng.uniform(-1.0, 1.0, (300, 3))
+    cp = idx.closest(p)
+    _, d_ref, _ = trimesh.proximity.closest_point(plate, p)
+    np.testing.assert_allclose(cp.distance, d_ref, atol=DIST_TOL)
+    assert set(np.unique(cp.face)) <= set(range(len(plate.faces)))
+    hit = idx.segments_cross(p, p + [0.6, 0.0, 0.0])
+    ref = (p[:, 0] < 0.0) & (p[:, 0] + 0.6 >= 0.0) | (p[:, 0] <= 0.2) & (p[:, 0] + 0.6 > 0.2)
+    np.testing.assert_array_equal(hit, ref)
+
+
+def test_segment_through_thin_plate_detected():
+    plate = trimesh.creation.box(bounds=[[0.49, -5, -5], [0.51, 5, 5]])
+    idx = TriangleIndex(plate.vertices, plate.faces, bucket_size=0.5)
+    hit = idx.segments_cross(np.array([[0.0, 0, 0], [0.0, 0, 0]]), np.array([[1.0, 0.3, 0.2], [0.45, 2, 2]]))
+    assert hit.tolist() == [True, False]
+
+
+def test_pairwise_kernels_simple_cases():
+    a = np.array([[0.0, 0, 0]] * 3)
+    b = np.array([[1.0, 0, 0]] * 3)
+    c = np.array([[0.0, 1, 0]] * 3)
+    p = np.array([[0.2, 0.2, 1.0], [-1.0, -1.0, 0.0], [1.0, 1.0, 0.0]])
+    q, region = closest_point_on_triangles(p, a, b, c)
+    np.testing.assert_allclose(q, [[0.2, 0.2, 0.0], [0, 0, 0], [0.5, 0.5, 0]], atol=1e-15)
+    assert region.tolist() == [0, 1, 5]
+    hit = segments_cross_triangles(p, p - [0, 0, 2.0], a, b, c)
+    assert hit.tolist() == [True, False, False]
+
+
+def test_bad_index_input():
+    with pytest.raises(InputError, match="bucket_size must be a positive length"):
+        TriangleIndex(np.eye(3), np.array([[0, 1, 2]]), bucket_size=0.0)
+    with pytest.raises(InputError, match=r"needs \(n, 3\) vertices"):
+        TriangleIndex(np.eye(3)[:, :2], np.array([[0, 1, 2]]), bucket_size=1.0)
+
+
+def test_cheap_distance_lower_bound_is_a_lower_bound():
+    m = _annulus()
+    rng = np.random.default_rng(5)
+    p = rng.uniform(-1.5, 1.5, (500, 3))
+    idx = TriangleIndex(m.vertices, m.faces, bucket_size=0.15)
+    exact = idx.closest(p).distance
+    lb = idx.distance_lower_bound(p, 0.3)
+    assert np.all(lb <= np.minimum(exact, 0.3) + DIST_TOL)
+    assert np.all(lb >= 0.0)
+    # Tight where the sphere bound is: far points come back at the cap.
+    assert np.all(lb[exact > 0.3 + 2 * idx.piece_radius.max()] == 0.3)
+
+
+def test_fan_crossing_agrees_with_plain_crossing():
+    # Two implementations of the same predicate (Möller & Trumbore 1997) must agree.
+    m = _annulus()
+    rng = np.random.default_rng(6)
+    o = rng.uniform(-1.2, 1.2, (200, 3))
+    ends = o[:, None, :] + rng.uniform(-0.4, 0.4, (200, 7, 3))
+    valid = rng.random((200, 7)) < 0.8
+    idx = TriangleIndex(m.vertices, m.faces, bucket_size=0.15)
+    fan = idx.segments_cross_fan(o, ends, valid, reach=0.7)
+    plain = idx.segments_cross(np.repeat(o, 7, axis=0), ends.reshape(-1, 3)).reshape(200, 7) & valid
+    np.testing.assert_array_equal(fan, plain)
+    assert plain.sum() > 20
