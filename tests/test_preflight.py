@@ -49,6 +49,9 @@ def _variant(old, new):
 
 
 def test_time_step_far_too_large_fails_time_family():
+    # Limits: Courant number <= 1 (Courant, Friedrichs & Lewy 1928; REFERENCES §4.3 [memory: high]) and surface
+    # travel below one cell per step (Udaykumar et al. 2001; Mittal et al. 2008; REFERENCES §3.2 [memory: medium]).
+    # Here the body alone moves 0.2 s * 0.0565 m/s = 3.8 cells of 3 mm per step.
     rep = preflight(_variant("step = 0.002", "step = 0.2"))
     checks = _by_id(rep)
     assert rep.verdict == "fail"
@@ -57,6 +60,7 @@ def test_time_step_far_too_large_fails_time_family():
 
 
 def test_grid_too_coarse_fails_resolution():
+    # Cells per chord against the [checks] limit (common practice, no single source; REFERENCES §4.4 [memory: low-medium]).
     rep = preflight(_variant("spacing = 0.006", "spacing = 0.024"))
     checks = _by_id(rep)
     assert checks["resolution.chord"].status == "fail"
@@ -72,6 +76,7 @@ def test_refinement_box_missing_the_body_fails_refine():
 
 
 def test_domain_the_plunging_body_leaves_fails_domain():
+    # Plunge 0.115 m in a domain of half-height 0.12 m: the wing's thickness alone reaches the faces (geometry).
     rep = preflight(_variant("plunge_amplitude = 0.03", "plunge_amplitude = 0.115"))
     checks = _by_id(rep)
     assert checks["domain.inside"].status == "fail"
@@ -117,6 +122,7 @@ def test_tandem_pair_checks_both_bodies_and_their_gap():
 
 
 def test_tandem_pair_too_close_fails_the_gap_check():
+    # "A gap under about two cells starves stencils" (common practice, no single source): rest gap 3 mm = 1 cell.
     rep = preflight(parse_case(TANDEM_CASE.replace("offset = [0.09, 0.0, 0.0]", "offset = [0.063, 0.0, 0.0]")))
     gap = _by_id(rep)["resolution.gap"]
     assert gap.status == "fail" and gap.value < 2
