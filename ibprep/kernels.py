@@ -409,3 +409,219 @@ def closest(index, points, *, max_distance: float = math.inf) -> ClosestPoints:
         index.vertex_normal,
     )
     return ClosestPoints(point=point, distance=dist, normal=normal, face=face, exact=exact)
+
+
+# ------------------------------------------------------------- WLS solve
+@numba.njit(**_JIT)
+def _tridiagonal_eigvals(d, e):
+    """Eigenvalues (in d, unordered) of the symmetric tridiagonal matrix with diagonal d and
+    sub-diagonal e[:-1] (e[-1] unused), by the implicit QL algorithm with Wilkinson-type
+    shifts (Press et al., Numerical Recipes, 3rd ed. 2007, §11.4 routine tqli)."""
+    m = d.shape[0]
+    for l in range(m):
+        it = 0
+        while True:
+            mm = l
+            while mm < m - 1:
+                dd = abs(d[mm]) + abs(d[mm + 1])
+                if abs(e[mm]) + dd == dd:
+                    break
+                mm += 1
+            if mm == l or it >= 60:
+                break
+            it += 1
+            g = (d[l + 1] - d[l]) / (2.0 * e[l])
+            r = math.sqrt(g * g + 1.0)
+            g = d[mm] - d[l] + e[l] / (g + (r if g >= 0.0 else -r))
+            sn = 1.0
+            cs = 1.0
+            p = 0.0
+            i = mm - 1
+            underflow = False
+            while i >= l:
+                f = sn * e[i]
+                b = cs * e[i]
+                r = math.sqrt(f * f + g * g)  # entries are O(|G|): no overflow; underflow is handled below
+                e[i + 1] = r
+                if r == 0.0:
+                    d[i + 1] -= p
+                    e[mm] = 0.0
+                    underflow = True
+                    break
+                sn = f / r
+                cs = g / r
+                g = d[i + 1] - p
+                r = (d[i] - g) * sn + 2.0 * cs * b
+                p = sn * r
+                d[i + 1] = g + p
+                g = cs * r - b
+                i -= 1
+            if underflow:
+                continue
+            d[l] -= p
+            e[l] = g
+            e[mm] = 0.0
+
+
+@numba.njit(**_JIT)
+def _extreme_eigvals(G, d, e2, v, p_):  # e2: sub-diagonal work array
+    """Smallest and largest eigenvalues of the symmetric (m, m) G (overwritten).
+
+    Householder reduction to tridiagonal form (Golub & Van Loan, Matrix Computations,
+    §8.3.1), then implicit QL. Absolute accuracy about the round-off of |G|, as
+    LAPACK's dsyevd that numpy.linalg.eigvalsh calls.
+    """
+    m = G.shape[0]
+    for k in range(m - 2):
+        nrm2 = 0.0
+        for j in range(k + 1, m):
+            nrm2 += G[j, k] * G[j, k]
+        nrm = math.sqrt(nrm2)
+        if nrm == 0.0:
+            continue
+        alpha = -nrm if G[k + 1, k] >= 0.0 else nrm
+        vv = 0.0
+        for j in range(k + 1, m):
+            v[j] = G[j, k]
+        v[k + 1] -= alpha
+        for j in range(k + 1, m):
+            vv += v[j] * v[j]
+        beta = 2.0 / vv
+        # p = beta G v, w = p - (beta / 2)(p . v) v, G <- G - v w^T - w v^T on the trailing block.
+        pv = 0.0
+        for i in range(k + 1, m):
+            s = 0.0
+            for j in range(k + 1, m):
+                s += G[i, j] * v[j]
+            p_[i] = beta * s
+            pv += p_[i] * v[i]
+        half = 0.5 * beta * pv
+        for i in range(k + 1, m):
+            p_[i] -= half * v[i]
+        for i in range(k + 1, m):
+            for j in range(k + 1, m):
+                G[i, j] -= v[i] * p_[j] + p_[i] * v[j]
+        G[k + 1, k] = alpha
+        G[k, k + 1] = alpha
+    for i in range(m):
+        d[i] = G[i, i]
+        e2[i] = G[i + 1, i] if i < m - 1 else 0.0
+    _tridiagonal_eigvals(d, e2)
+    lmin = np.inf
+    lmax = -np.inf
+    for i in range(m):
+        lmin = min(lmin, d[i])
+        lmax = max(lmax, d[i])
+    return lmin, lmax
+
+
+@numba.njit(**_JIT)
+def _wls_kernel(A, sw):
+    n, r, m = A.shape
+    a = np.zeros((n, r))
+    cond = np.full(n, np.inf)
+    B = np.empty((r, m))
+    V = np.empty((m, r))  # Householder vectors (row k: entries k..r-1)
+    beta = np.empty(m)
+    G = np.empty((m, m))
+    d = np.empty(m)
+    e2 = np.empty(m)
+    v = np.empty(m)
+    p_ = np.empty(m)
+    y = np.empty(r)
+    for i in range(n):
+        for j in range(r):
+            for k in range(m):
+                B[j, k] = sw[i, j] * A[i, j, k]
+        # Householder QR, B -> R in its upper triangle.
+        for k in range(m):
+            nrm2 = 0.0
+            for j in range(k, r):
+                nrm2 += B[j, k] * B[j, k]
+            nrm = math.sqrt(nrm2)
+            if nrm == 0.0:
+                beta[k] = 0.0
+                continue
+            alpha = -nrm if B[k, k] >= 0.0 else nrm
+            for j in range(k, r):
+                V[k, j] = B[j, k]
+            V[k, k] -= alpha
+            vv = 0.0
+            for j in range(k, r):
+                vv += V[k, j] * V[k, j]
+            beta[k] = 2.0 / vv
+            B[k, k] = alpha
+            for j in range(k + 1, r):
+                B[j, k] = 0.0
+            for col in range(k + 1, m):
+                s = 0.0
+                for j in range(k, r):
+                    s += V[k, j] * B[j, col]
+                s *= beta[k]
+                for j in range(k, r):
+                    B[j, col] -= s * V[k, j]
+        # Condition from the eigenvalues of R^T R, as the numpy path.
+        for p in range(m):
+            for q in range(m):
+                s = 0.0
+                for k in range(min(p, q) + 1):
+                    s += B[k, p] * B[k, q]
+                G[p, q] = s
+        lmin, lmax = _extreme_eigvals(G, d, e2, v, p_)
+        dmin = np.inf
+        dmax = 0.0
+        for k in range(m):
+            rkk = abs(B[k, k])
+            dmin = min(dmin, rkk)
+            dmax = max(dmax, rkk)
+        if not (lmin > _GRAM_RTOL * lmax) or not (dmin > _RANK_RTOL * dmax):
+            continue  # rank deficient: zero weights, infinite condition
+        cond[i] = math.sqrt(lmax / lmin)
+        # c_0 = (Q y) . (sw f) with R^T y = e_0: forward substitution, then the reflectors.
+        for k in range(r):
+            y[k] = 0.0
+        for k in range(m):
+            s = 1.0 if k == 0 else 0.0
+            for j in range(k):
+                s -= B[j, k] * y[j]
+            y[k] = s / B[k, k]
+        for k in range(m - 1, -1, -1):
+            if beta[k] == 0.0:
+                continue
+            s = 0.0
+            for j in range(k, r):
+                s += V[k, j] * y[j]
+            s *= beta[k]
+            for j in range(k, r):
+                y[j] -= s * V[k, j]
+        for j in range(r):
+            a[i, j] = y[j] * sw[i, j]
+    return a, cond
+
+
+def wls_value_weights(A, sw):
+    """Weights of the data in the least-squares value at the origin, and the condition.
+
+    Compiled equivalent of ``ibprep.stencils._wls_value_weights``: Householder QR
+    of diag(sw) A per stencil, the value weights from R and the reflectors, the
+    condition number from the extreme eigenvalues of R^T R (tridiagonal reduction and
+    implicit QL) with the same
+    rank tests. Agrees with LAPACK's results to round-off: weights to about
+    1e-15 times the condition, the condition itself to about 1e-16 times its square.
+
+    Parameters
+    ----------
+    A : (n, r, m) float — design matrix (basis at data rows); zero rows allowed.
+    sw : (n, r) float — square roots of the row weights; 0 for padded rows.
+
+    Returns
+    -------
+    a : (n, r) float — the fitted constant term c_0 = a · data.
+    cond : (n,) float — 2-norm condition number of diag(sw) A (inf if rank deficient).
+    """
+    A = np.ascontiguousarray(A, dtype=float)
+    sw = np.ascontiguousarray(sw, dtype=float)
+    n, r, m = A.shape
+    if r < m or n == 0:
+        return np.zeros((n, r)), np.full(n, np.inf)
+    return _wls_kernel(A, sw)

@@ -212,3 +212,54 @@ def test_kernels_on_the_stencil_builders_own_calls(monkeypatch):
         np.testing.assert_array_equal(kernels.segments_cross_fan(idx, *args), idx.segments_cross_fan(*args))
     for idx, points, kw in calls["closest"]:
         _assert_closest_equal(kernels.closest(idx, points, **kw), idx.closest(points, **kw))
+
+
+def _design(seed, n=400, k=30, planar=False, pad=5):
+    from ibprep import stencils
+
+    rng = np.random.default_rng(seed)
+    xi = rng.uniform(-3, 3, (n, k + 1, 2 if planar else 3))
+    A = stencils._basis(xi, planar)
+    sw = np.sqrt(np.exp(-((2 * np.linalg.norm(xi, axis=2) / 4.0) ** 2)))
+    sw[:, k - pad : k] = 0.0  # padded rows
+    A[:, k - pad : k] = 0.0
+    return A, sw
+
+
+# Weights agree to round-off amplified by the condition (cond <= ~1e3 here): 1e-12 of the largest weight.
+WLS_WEIGHT_RTOL = 1e-12
+# The condition comes from the Gram eigenvalues in both paths; their round-off is ~1e-16 * cond^2.
+WLS_COND_RTOL = 1e-9
+
+
+@pytest.mark.parametrize("planar", [False, True])
+def test_wls_value_weights_match_lapack_path(planar):
+    # Reference: stencils._wls_value_weights (numpy.linalg.qr / eigvalsh / solve, i.e. LAPACK).
+    from ibprep import stencils
+
+    A, sw = _design(3, planar=planar)
+    a0, c0 = stencils._wls_value_weights(A, sw)
+    a1, c1 = kernels.wls_value_weights(A, sw)
+    assert np.isfinite(c0).all() and np.isfinite(c1).all()
+    scale = np.abs(a0).max(axis=1, keepdims=True)
+    np.testing.assert_allclose(a1 / scale, a0 / scale, rtol=0, atol=WLS_WEIGHT_RTOL)
+    np.testing.assert_allclose(c1, c0, rtol=WLS_COND_RTOL)
+    # Invariant (common practice, no single source): a fit whose basis holds the constant
+    # reproduces constant data exactly, so the value weights sum to one; padded rows weigh 0.
+    np.testing.assert_allclose(a1.sum(axis=1), 1.0, atol=1e-10)
+    assert (a1[sw == 0] == 0).all()
+
+
+def test_wls_value_weights_rank_deficient_and_too_few_rows():
+    from ibprep import stencils
+
+    A, sw = _design(4, n=60)
+    A[:20, :, 4] = A[:20, :, 1]  # two equal columns: rank deficient
+    sw[20:30, 6:] = 0.0  # only six weighted rows for ten unknowns
+    a0, c0 = stencils._wls_value_weights(A, sw)
+    a1, c1 = kernels.wls_value_weights(A, sw)
+    np.testing.assert_array_equal(np.isinf(c1), np.isinf(c0))
+    assert np.isinf(c1[:30]).all() and np.isfinite(c1[30:]).all()
+    assert (a1[:30] == 0).all()
+    a_few, c_few = kernels.wls_value_weights(np.ones((3, 5, 10)), np.ones((3, 5)))
+    assert a_few.shape == (3, 5) and np.isinf(c_few).all() and (a_few == 0).all()
