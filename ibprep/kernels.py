@@ -144,6 +144,16 @@ def _fan_kernel(o, e, valid, reach, grid_origin, s, dims, cstart, ccount, citems
     breach = reach + rmax  # near_pairs: bucket range grown by the largest piece radius
     lo = np.empty(3, dtype=np.int64)
     hi = np.empty(3, dtype=np.int64)
+    # Per-row list of the pieces near the origin (each piece at most once: centre buckets).
+    cap = citems.shape[0]
+    l_face = np.empty(cap, dtype=np.int64)
+    l_cx = np.empty(cap)
+    l_cy = np.empty(cap)
+    l_cz = np.empty(cap)
+    l_box = np.empty(cap)
+    l_so = np.empty(cap)
+    l_cc = np.empty(cap)
+    l_r2 = np.empty(cap)
     for r in range(n):
         nvalid = 0
         for j in range(c):
@@ -161,59 +171,73 @@ def _fan_kernel(o, e, valid, reach, grid_origin, s, dims, cstart, ccount, citems
             hi[k] = min(max(np.int64(math.floor(((pk + breach) - grid_origin[k]) / s)), 0), dims[k] - 1)
         if far:
             continue
-        left = nvalid
+        # Gather: the ball screen of near_pairs, and per piece the quantities of its plane.
+        m = 0
         for bx in range(lo[0], hi[0] + 1):
             for by in range(lo[1], hi[1] + 1):
                 for bz in range(lo[2], hi[2] + 1):
                     flat = (bx * dims[1] + by) * dims[2] + bz
                     for pos in range(cstart[flat], cstart[flat] + ccount[flat]):
                         t = citems[pos]
-                        # Ball screen of near_pairs: piece sphere meets the ball of reach.
                         dcx, dcy, dcz = ox - pcentre[t, 0], oy - pcentre[t, 1], oz - pcentre[t, 2]
                         rr = reach + pradius[t]
                         if not (_dot3(dcx, dcy, dcz, dcx, dcy, dcz) <= rr * rr):
                             continue
                         f = pparent[t]
-                        nx, ny, nz = fnormal[f, 0], fnormal[f, 1], fnormal[f, 2]
-                        s_o = _dot3(ox - tri[f, 0, 0], oy - tri[f, 0, 1], oz - tri[f, 0, 2], nx, ny, nz)
+                        l_face[m] = f
+                        l_so[m] = _dot3(ox - tri[f, 0, 0], oy - tri[f, 0, 1], oz - tri[f, 0, 2],
+                                        fnormal[f, 0], fnormal[f, 1], fnormal[f, 2])
                         cx = pcentre[t, 0] - ox
                         cy = pcentre[t, 1] - oy
                         cz = pcentre[t, 2] - oz
-                        cc = _dot3(cx, cy, cz, cx, cy, cz)
-                        r2 = pradius[t] * pradius[t] * (1 + 1e-9)
-                        for j in range(c):
-                            if not valid[r, j] or hit[r, j]:
-                                continue
-                            dx, dy, dz = e[r, j, 0] - ox, e[r, j, 1] - oy, e[r, j, 2] - oz
-                            s_j = dx * nx
-                            s_j += dy * ny
-                            s_j += dz * nz
-                            s_j += s_o
-                            # Plane-side screen: the segment reaches the plane within [0, 1].
-                            tau = s_o / (s_o - s_j)
-                            if not ((tau >= 0.0) and (tau <= 1.0)):
-                                continue
-                            dot = dx * cx
-                            dot += dy * cy
-                            dot += dz * cz
-                            dd = _dot3(dx, dy, dz, dx, dy, dz)
-                            q = tau * dd
-                            q -= 2.0 * dot
-                            q *= tau
-                            q += cc
-                            if not (q <= r2):
-                                continue
-                            if _segment_crosses(o[r], e[r, j], tri[f]):
-                                hit[r, j] = True
-                                left -= 1
-                        if left == 0:
-                            break
-                    if left == 0:
-                        break
-                if left == 0:
+                        l_cx[m] = cx
+                        l_cy[m] = cy
+                        l_cz[m] = cz
+                        l_cc[m] = _dot3(cx, cy, cz, cx, cy, cz)
+                        l_r2[m] = pradius[t] * pradius[t] * (1 + 1e-9)
+                        # Half-width of the box prefilter: the radius plus a margin far above the
+                        # round-off of the sphere screen below (~1e-8 (reach + radius)).
+                        l_box[m] = pradius[t] + 1e-6 * (pradius[t] + reach)
+                        m += 1
+        if m == 0:
+            continue
+        for j in range(c):
+            if not valid[r, j]:
+                continue
+            dx, dy, dz = e[r, j, 0] - ox, e[r, j, 1] - oy, e[r, j, 2] - oz
+            xmin, xmax = min(dx, 0.0), max(dx, 0.0)
+            ymin, ymax = min(dy, 0.0), max(dy, 0.0)
+            zmin, zmax = min(dz, 0.0), max(dz, 0.0)
+            dd = _dot3(dx, dy, dz, dx, dy, dz)
+            for i in range(m):
+                # Conservative prefilter (not in the numpy path): the point of the segment the
+                # sphere screen accepts lies in the segment's box, so the sphere must meet it.
+                w = l_box[i]
+                if (l_cx[i] - w > xmax) or (l_cx[i] + w < xmin) or (l_cy[i] - w > ymax) or (l_cy[i] + w < ymin) \
+                        or (l_cz[i] - w > zmax) or (l_cz[i] + w < zmin):
+                    continue
+                f = l_face[i]
+                s_o = l_so[i]
+                s_j = dx * fnormal[f, 0]
+                s_j += dy * fnormal[f, 1]
+                s_j += dz * fnormal[f, 2]
+                s_j += s_o
+                # Plane-side screen: the segment reaches the plane within [0, 1].
+                tau = s_o / (s_o - s_j)
+                if not ((tau >= 0.0) and (tau <= 1.0)):
+                    continue
+                dot = dx * l_cx[i]
+                dot += dy * l_cy[i]
+                dot += dz * l_cz[i]
+                q = tau * dd
+                q -= 2.0 * dot
+                q *= tau
+                q += l_cc[i]
+                if not (q <= l_r2[i]):
+                    continue
+                if _segment_crosses(o[r], e[r, j], tri[f]):
+                    hit[r, j] = True
                     break
-            if left == 0:
-                break
     return hit
 
 
