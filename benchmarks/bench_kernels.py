@@ -100,43 +100,73 @@ def best_cpu(fn, repeat):
     return best, out
 
 
+_FAN0, _CLO0, _WLS0 = TriangleIndex.segments_cross_fan, TriangleIndex.closest, stencils._wls_value_weights
+
+
+def _route(fan, clo, wls):
+    """Point every call site build_stencils may use (before or after the wiring) at these functions."""
+    TriangleIndex.segments_cross_fan = lambda self, *a: fan(self, *a)
+    TriangleIndex.closest = lambda self, p, **kw: clo(self, p, **kw)
+    stencils._wls_value_weights = wls
+    for name, fn in (("_segments_cross_fan", fan), ("_closest", clo), ("_wls_kernel", wls)):
+        if hasattr(stencils, name):
+            setattr(stencils, name, fn)
+
+
+def _numpy_fan(index, *a):
+    return _FAN0(index, *a)
+
+
+def _numpy_closest(index, p, **kw):
+    return _CLO0(index, p, **kw)
+
+
+def _restore():
+    _route(_numpy_fan, _numpy_closest, _WLS0)
+    TriangleIndex.segments_cross_fan, TriangleIndex.closest = _FAN0, _CLO0
+
+
 def record_calls(tags, grid, surf):
+    """The numpy build, recording the arguments of its hot calls."""
     calls = {"fan": [], "closest": [], "wls": []}
-    fan0, clo0, wls0 = TriangleIndex.segments_cross_fan, TriangleIndex.closest, stencils._wls_value_weights
 
-    def fan(self, *a):
-        calls["fan"].append((self, a))
-        return fan0(self, *a)
+    def fan(index, *a):
+        calls["fan"].append((index, a))
+        return _FAN0(index, *a)
 
-    def clo(self, p, **kw):
-        calls["closest"].append((self, p, kw))
-        return clo0(self, p, **kw)
+    def clo(index, p, **kw):
+        calls["closest"].append((index, p, kw))
+        return _CLO0(index, p, **kw)
 
     def wls(A, sw):
         calls["wls"].append((A, sw))
-        return wls0(A, sw)
+        return _WLS0(A, sw)
 
-    TriangleIndex.segments_cross_fan, TriangleIndex.closest, stencils._wls_value_weights = fan, clo, wls
+    _route(fan, clo, wls)
     try:
         t = time.process_time()
         st = build_stencils(tags, grid, surf)
         t_build = time.process_time() - t
     finally:
-        TriangleIndex.segments_cross_fan, TriangleIndex.closest, stencils._wls_value_weights = fan0, clo0, wls0
+        _restore()
     return st, t_build, calls
+
+
+def numpy_build(tags, grid, surf):
+    _route(_numpy_fan, _numpy_closest, _WLS0)
+    try:
+        return build_stencils(tags, grid, surf)
+    finally:
+        _restore()
 
 
 def patched_build(tags, grid, surf, with_wls):
     """build_stencils with the kernels at the call sites (what kernels-wiring.diff does)."""
-    fan0, clo0, wls0 = TriangleIndex.segments_cross_fan, TriangleIndex.closest, stencils._wls_value_weights
-    TriangleIndex.segments_cross_fan = lambda self, *a: kernels.segments_cross_fan(self, *a)
-    TriangleIndex.closest = lambda self, p, **kw: kernels.closest(self, p, **kw)
-    if with_wls:
-        stencils._wls_value_weights = kernels.wls_value_weights
+    _route(kernels.segments_cross_fan, kernels.closest, kernels.wls_value_weights if with_wls else _WLS0)
     try:
         return build_stencils(tags, grid, surf)
     finally:
-        TriangleIndex.segments_cross_fan, TriangleIndex.closest, stencils._wls_value_weights = fan0, clo0, wls0
+        _restore()
 
 
 def compile_cost():
@@ -193,14 +223,14 @@ def main():
     for idx, a in calls["fan"]:
         compare(
             f"segments_cross_fan {a[1].shape[0]}x{a[1].shape[1]}",
-            lambda: idx.segments_cross_fan(*a),
+            lambda: _FAN0(idx, *a),
             lambda: kernels.segments_cross_fan(idx, *a),
             lambda x, y: "equal" if np.array_equal(x, y) else f"DIFFER in {(x != y).sum()}",
         )
     for idx, p, kw in calls["closest"]:
         compare(
             f"closest {p.shape[0]} points",
-            lambda: idx.closest(p, **kw),
+            lambda: _CLO0(idx, p, **kw),
             lambda: kernels.closest(idx, p, **kw),
             lambda x, y: "equal" if all(np.array_equal(getattr(x, k), getattr(y, k)) for k in ("point", "distance", "normal", "face", "exact")) else "DIFFER",
         )
@@ -218,11 +248,11 @@ def main():
 
             compare(
                 f"_wls_value_weights {A.shape}",
-                lambda: stencils._wls_value_weights(A, sw),
+                lambda: _WLS0(A, sw),
                 lambda: kernels.wls_value_weights(A, sw),
                 chk,
             )
-    t_ref, st_ref = best_cpu(lambda: build_stencils(tags, grid, surf), 1)
+    t_ref, st_ref = best_cpu(lambda: numpy_build(tags, grid, surf), 1)
     t_ker, st_ker = best_cpu(lambda: patched_build(tags, grid, surf, True), args.repeat)
     same = all(
         np.array_equal(getattr(st_ref, k), getattr(st_ker, k)) for k in ("cells", "neighbours", "n_visible", "ok", "boundary_point", "boundary_normal")

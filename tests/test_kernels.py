@@ -177,6 +177,8 @@ def _stencil_calls(monkeypatch):
     from ibprep.classify import CellTag
     from scipy import ndimage
 
+    from ibprep import stencils
+
     calls = {"fan": [], "closest": []}
     fan0 = TriangleIndex.segments_cross_fan
     closest0 = TriangleIndex.closest
@@ -191,6 +193,11 @@ def _stencil_calls(monkeypatch):
 
     monkeypatch.setattr(TriangleIndex, "segments_cross_fan", fan)
     monkeypatch.setattr(TriangleIndex, "closest", clo)
+    # Once the kernels are wired into stencils.py, record at those call sites instead.
+    if hasattr(stencils, "_segments_cross_fan"):
+        monkeypatch.setattr(stencils, "_segments_cross_fan", lambda index, *a: fan(index, *a))
+    if hasattr(stencils, "_closest"):
+        monkeypatch.setattr(stencils, "_closest", lambda index, p, **kw: clo(index, p, **kw))
     m = trimesh.creation.icosphere(subdivisions=3, radius=1.0)
     h = 1.0 / 8
     L = 1.0 + 6 * h
