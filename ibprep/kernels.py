@@ -544,8 +544,8 @@ def _wls_kernel(A, sw):
     n, r, m = A.shape
     a = np.zeros((n, r))
     cond = np.full(n, np.inf)
-    B = np.empty((r, m))
-    V = np.empty((m, r))  # Householder vectors (row k: entries k..r-1)
+    Bt = np.empty((m, r))  # column k of diag(sw) A, rows with sw = 0 dropped, contiguous
+    V = np.empty((m, r))  # Householder vectors (row k: entries k..nk-1)
     beta = np.empty(m)
     G = np.empty((m, m))
     d = np.empty(m)
@@ -553,73 +553,86 @@ def _wls_kernel(A, sw):
     v = np.empty(m)
     p_ = np.empty(m)
     y = np.empty(r)
+    rows = np.empty(r, dtype=np.int64)
     for i in range(n):
+        # Rows of zero weight (padding) change neither R nor the weights: drop them.
+        nk = 0
         for j in range(r):
+            if sw[i, j] != 0.0:
+                rows[nk] = j
+                nk += 1
+        if nk < m:
+            continue  # fewer weighted rows than unknowns: rank deficient
+        for jj in range(nk):
+            j = rows[jj]
             for k in range(m):
-                B[j, k] = sw[i, j] * A[i, j, k]
-        # Householder QR, B -> R in its upper triangle.
+                Bt[k, jj] = sw[i, j] * A[i, j, k]
+        # Householder QR, Bt -> R^T (R[k, p] = Bt[p, k] for k <= p).
         for k in range(m):
             nrm2 = 0.0
-            for j in range(k, r):
-                nrm2 += B[j, k] * B[j, k]
+            for j in range(k, nk):
+                nrm2 += Bt[k, j] * Bt[k, j]
             nrm = math.sqrt(nrm2)
             if nrm == 0.0:
                 beta[k] = 0.0
                 continue
-            alpha = -nrm if B[k, k] >= 0.0 else nrm
-            for j in range(k, r):
-                V[k, j] = B[j, k]
+            alpha = -nrm if Bt[k, k] >= 0.0 else nrm
+            for j in range(k, nk):
+                V[k, j] = Bt[k, j]
             V[k, k] -= alpha
             vv = 0.0
-            for j in range(k, r):
+            for j in range(k, nk):
                 vv += V[k, j] * V[k, j]
-            beta[k] = 2.0 / vv
-            B[k, k] = alpha
-            for j in range(k + 1, r):
-                B[j, k] = 0.0
+            bk = 2.0 / vv
+            beta[k] = bk
+            Bt[k, k] = alpha
+            for j in range(k + 1, nk):
+                Bt[k, j] = 0.0
             for col in range(k + 1, m):
-                s = 0.0
-                for j in range(k, r):
-                    s += V[k, j] * B[j, col]
-                s *= beta[k]
-                for j in range(k, r):
-                    B[j, col] -= s * V[k, j]
+                sdot = 0.0
+                for j in range(k, nk):
+                    sdot += V[k, j] * Bt[col, j]
+                sdot *= bk
+                for j in range(k, nk):
+                    Bt[col, j] -= sdot * V[k, j]
         # Condition from the eigenvalues of R^T R, as the numpy path.
         for p in range(m):
-            for q in range(m):
-                s = 0.0
-                for k in range(min(p, q) + 1):
-                    s += B[k, p] * B[k, q]
-                G[p, q] = s
+            for q in range(p, m):
+                sg = 0.0
+                for k in range(p + 1):
+                    sg += Bt[p, k] * Bt[q, k]
+                G[p, q] = sg
+                G[q, p] = sg
         lmin, lmax = _extreme_eigvals(G, d, e2, v, p_)
         dmin = np.inf
         dmax = 0.0
         for k in range(m):
-            rkk = abs(B[k, k])
+            rkk = abs(Bt[k, k])
             dmin = min(dmin, rkk)
             dmax = max(dmax, rkk)
         if not (lmin > _GRAM_RTOL * lmax) or not (dmin > _RANK_RTOL * dmax):
             continue  # rank deficient: zero weights, infinite condition
         cond[i] = math.sqrt(lmax / lmin)
         # c_0 = (Q y) . (sw f) with R^T y = e_0: forward substitution, then the reflectors.
-        for k in range(r):
+        for k in range(nk):
             y[k] = 0.0
         for k in range(m):
-            s = 1.0 if k == 0 else 0.0
+            sy = 1.0 if k == 0 else 0.0
             for j in range(k):
-                s -= B[j, k] * y[j]
-            y[k] = s / B[k, k]
+                sy -= Bt[k, j] * y[j]
+            y[k] = sy / Bt[k, k]
         for k in range(m - 1, -1, -1):
             if beta[k] == 0.0:
                 continue
-            s = 0.0
-            for j in range(k, r):
-                s += V[k, j] * y[j]
-            s *= beta[k]
-            for j in range(k, r):
-                y[j] -= s * V[k, j]
-        for j in range(r):
-            a[i, j] = y[j] * sw[i, j]
+            sdot = 0.0
+            for j in range(k, nk):
+                sdot += V[k, j] * y[j]
+            sdot *= beta[k]
+            for j in range(k, nk):
+                y[j] -= sdot * V[k, j]
+        for jj in range(nk):
+            j = rows[jj]
+            a[i, j] = y[jj] * sw[i, j]
     return a, cond
 
 
