@@ -154,6 +154,11 @@ def _fan_kernel(o, e, valid, reach, grid_origin, s, dims, cstart, ccount, citems
     l_so = np.empty(cap)
     l_cc = np.empty(cap)
     l_r2 = np.empty(cap)
+    c_j = np.empty(c, dtype=np.int64)
+    c_mx = np.empty(c)
+    c_my = np.empty(c)
+    c_mz = np.empty(c)
+    c_ok = np.empty(c, dtype=np.bool_)
     for r in range(n):
         nvalid = 0
         for j in range(c):
@@ -201,21 +206,34 @@ def _fan_kernel(o, e, valid, reach, grid_origin, s, dims, cstart, ccount, citems
                         m += 1
         if m == 0:
             continue
+        # Columns of the row as contiguous centre/half-extent arrays of their boxes.
+        nc = 0
         for j in range(c):
             if not valid[r, j]:
                 continue
             dx, dy, dz = e[r, j, 0] - ox, e[r, j, 1] - oy, e[r, j, 2] - oz
-            xmin, xmax = min(dx, 0.0), max(dx, 0.0)
-            ymin, ymax = min(dy, 0.0), max(dy, 0.0)
-            zmin, zmax = min(dz, 0.0), max(dz, 0.0)
-            dd = _dot3(dx, dy, dz, dx, dy, dz)
-            for i in range(m):
-                # Conservative prefilter (not in the numpy path): the point of the segment the
-                # sphere screen accepts lies in the segment's box, so the sphere must meet it.
-                w = l_box[i]
-                if (l_cx[i] - w > xmax) or (l_cx[i] + w < xmin) or (l_cy[i] - w > ymax) or (l_cy[i] + w < ymin) \
-                        or (l_cz[i] - w > zmax) or (l_cz[i] + w < zmin):
+            c_j[nc] = j
+            c_mx[nc] = 0.5 * dx
+            c_my[nc] = 0.5 * dy
+            c_mz[nc] = 0.5 * dz
+            nc += 1
+        for i in range(m):
+            w = l_box[i]
+            px, py, pz = l_cx[i], l_cy[i], l_cz[i]
+            # Conservative prefilter (not in the numpy path): the point of the segment the
+            # sphere screen accepts lies in the segment's box, so the piece's sphere (grown
+            # by the margin) must meet that box. Branch-free over the columns.
+            for jj in range(nc):
+                mx, my, mz = c_mx[jj], c_my[jj], c_mz[jj]
+                c_ok[jj] = (abs(px - mx) <= w + abs(mx)) & (abs(py - my) <= w + abs(my)) & (abs(pz - mz) <= w + abs(mz))
+            for jj in range(nc):
+                if not c_ok[jj]:
                     continue
+                j = c_j[jj]
+                if hit[r, j]:
+                    continue
+                dx, dy, dz = e[r, j, 0] - ox, e[r, j, 1] - oy, e[r, j, 2] - oz
+                dd = _dot3(dx, dy, dz, dx, dy, dz)
                 f = l_face[i]
                 s_o = l_so[i]
                 s_j = dx * fnormal[f, 0]
@@ -237,7 +255,6 @@ def _fan_kernel(o, e, valid, reach, grid_origin, s, dims, cstart, ccount, citems
                     continue
                 if _segment_crosses(o[r], e[r, j], tri[f]):
                     hit[r, j] = True
-                    break
     return hit
 
 
