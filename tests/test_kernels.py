@@ -171,8 +171,8 @@ def test_closest_with_region_box_and_empty_input():
     assert empty.point.shape == (0, 3) and empty.face.shape == (0,)
 
 
-def _stencil_calls(monkeypatch):
-    """Run build_stencils on a small sphere and record the arguments of the hot calls."""
+def _stencil_calls(monkeypatch, case):
+    """Run build_stencils on a small sphere (3-D) or circle (2-D) and record the arguments of the hot calls."""
     from ibprep import build_stencils
     from ibprep.classify import CellTag
     from scipy import ndimage
@@ -198,22 +198,31 @@ def _stencil_calls(monkeypatch):
         monkeypatch.setattr(stencils, "_segments_cross_fan", lambda index, *a: fan(index, *a))
     if hasattr(stencils, "_closest"):
         monkeypatch.setattr(stencils, "_closest", lambda index, p, **kw: clo(index, p, **kw))
-    m = trimesh.creation.icosphere(subdivisions=3, radius=1.0)
     h = 1.0 / 8
     L = 1.0 + 6 * h
-    grid = Grid(lower=(-L, -L, -L), upper=(L, L, L), spacing=h)
-    c = grid.centres().reshape(-1, 3)
-    solid = (trimesh.Trimesh(m.vertices, m.faces).contains(c)).reshape(grid.shape)
+    if case == "sphere-3d":
+        m = trimesh.creation.icosphere(subdivisions=3, radius=1.0)
+        grid = Grid(lower=(-L, -L, -L), upper=(L, L, L), spacing=h)
+        solid = trimesh.Trimesh(m.vertices, m.faces).contains(grid.centres().reshape(-1, 3)).reshape(grid.shape)
+        surface, kw = (m.vertices, m.faces), dict(interface="solid-side")
+    else:  # a 2-D polygon: the builder indexes an open band of side walls
+        th = np.linspace(0.0, 2.0 * np.pi, 200, endpoint=False)
+        surface = np.column_stack([np.cos(th), np.sin(th)])
+        grid = Grid(lower=(-L, -L), upper=(L, L), spacing=h)
+        solid = (grid.centres() ** 2).sum(axis=-1) < 0.99
+        kw = dict(interface="solid-side", method="image-point")
     tags = np.full(solid.shape, CellTag.FLUID, np.uint8)
     tags[solid] = CellTag.SOLID
-    tags[~solid & ndimage.binary_dilation(solid, ndimage.generate_binary_structure(3, 1))] = CellTag.INTERFACE
-    build_stencils(tags, grid, (m.vertices, m.faces), interface="solid-side")
+    st = ndimage.generate_binary_structure(solid.ndim, 1)
+    tags[solid & ndimage.binary_dilation(~solid, st)] = CellTag.INTERFACE
+    build_stencils(tags, grid, surface, **kw)
     monkeypatch.undo()
     return calls
 
 
-def test_kernels_on_the_stencil_builders_own_calls(monkeypatch):
-    calls = _stencil_calls(monkeypatch)
+@pytest.mark.parametrize("case", ["sphere-3d", "circle-2d"])
+def test_kernels_on_the_stencil_builders_own_calls(monkeypatch, case):
+    calls = _stencil_calls(monkeypatch, case)
     assert calls["fan"] and calls["closest"]
     for idx, args in calls["fan"]:
         np.testing.assert_array_equal(kernels.segments_cross_fan(idx, *args), idx.segments_cross_fan(*args))
