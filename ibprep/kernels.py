@@ -7,15 +7,22 @@ numpy method it stands in for, so a call site switches with a one-line change:
 * :func:`closest` — :meth:`ibprep.proximity.TriangleIndex.closest`
 * :func:`wls_value_weights` — ``ibprep.stencils._wls_value_weights``
 
-The kernels walk the index's compressed-sparse-row buckets one query at a
-time (no pair arrays), apply the same screens with the same floating-point
-expressions in the same order, and run the same exact tests (Möller & Trumbore
-1997 for crossings; Ericson 2005, §5.1.5 for closest points). Results agree bit
-for bit with the numpy path (see tests/test_kernels.py). They are compiled with
-``fastmath`` off (no re-association, no fused multiply-add) and numpy's
-floating-point error model (a division by zero gives inf/NaN, as in numpy).
-The first call in a fresh environment compiles them (a few seconds, cached to
-disk afterwards).
+The geometric kernels walk the index's compressed-sparse-row buckets one
+query at a time (no pair arrays), apply the same screens with the same
+floating-point expressions in the same order (plus, for crossings, a cheaper
+conservative box screen in front), and run the same exact tests (Möller &
+Trumbore 1997 for crossings; Ericson 2005, §5.1.5 for closest points): their
+results equal the numpy path's bit for bit, ties included. The WLS kernel
+factorises each stencil with its own Householder QR, so it agrees with the
+LAPACK path to round-off (tests/test_kernels.py gives the tolerances).
+
+All are compiled with ``fastmath`` off (no re-association, no fused
+multiply-add), numpy's floating-point error model (a division by zero gives
+inf/NaN, as in numpy), single-threaded and releasing the GIL. The first call in
+a fresh environment compiles them (about 5 s for the crossings, 8 s for the
+closest points, 4 s for the WLS solve on the reference machine); numba caches
+the machine code on disk (``__pycache__``), after which loading takes a few
+hundredths of a second.
 """
 
 from __future__ import annotations
