@@ -268,6 +268,8 @@ def main():
         f"h = {h * 1e3:.3f} mm; {n} interface cells (fluid-side, Dirichlet, defaults). 2-core machine shared with "
         f"other jobs: CPU times (process_time), best of {args.repeat}, both paths in one process on the same inputs.",
         "",
+        "Rates: interface stencils of the whole build divided by the seconds of that call (stencils/s equivalents).",
+        "",
         "| call (as made by build_stencils) | numpy s | kernel s | ratio | kernel stencils/s | results |",
         "|---|---|---|---|---|---|",
         *rows,
