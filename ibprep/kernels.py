@@ -1,0 +1,688 @@
+"""Compiled (numba) equivalents of the stencil builder's hot geometric loops.
+
+Each function here takes the same inputs and returns the same outputs as the
+numpy method it stands in for, so a call site switches with a one-line change:
+
+* :func:`segments_cross_fan` — :meth:`ibprep.proximity.TriangleIndex.segments_cross_fan`
+* :func:`closest` — :meth:`ibprep.proximity.TriangleIndex.closest`
+* :func:`wls_value_weights` — ``ibprep.stencils._wls_value_weights``
+
+The geometric kernels walk the index's compressed-sparse-row buckets one
+query at a time (no pair arrays), apply the same screens with the same
+floating-point expressions in the same order (plus, for crossings, a cheaper
+conservative box screen in front), and run the same exact tests (Möller &
+Trumbore 1997 for crossings; Ericson 2005, §5.1.5 for closest points): their
+results equal the numpy path's bit for bit, ties included. The WLS kernel
+factorises each stencil with its own Householder QR, so it agrees with the
+LAPACK path to round-off (tests/test_kernels.py gives the tolerances).
+
+All are compiled with ``fastmath`` off (no re-association, no fused
+multiply-add), numpy's floating-point error model (a division by zero gives
+inf/NaN, as in numpy), single-threaded and releasing the GIL. The first call in
+a fresh environment compiles them (about 5 s for the crossings, 8 s for the
+closest points, 4 s for the WLS solve on the reference machine); numba caches
+the machine code on disk (``__pycache__``), after which loading takes a few
+hundredths of a second.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numba
+import numpy as np
+
+from .proximity import ClosestPoints
+
+__all__ = ["segments_cross_fan", "closest", "wls_value_weights"]
+
+_JIT = dict(cache=True, nogil=True, fastmath=False, error_model="numpy")
+
+# Same constants as ibprep.proximity / ibprep.stencils (kept equal by tests/test_kernels.py).
+_BARY_SLACK = 1e-12
+_FACE, _VA, _VB, _VC, _EAB, _EBC, _ECA = range(7)
+_RANK_RTOL = 1e-13
+_GRAM_RTOL = 1e-14
+
+
+# ------------------------------------------------------------- exact tests
+@numba.njit(**_JIT)
+def _dot3(ax, ay, az, bx, by, bz):
+    # The order numpy's einsum("ij,ij->i") sums three products in on this build (two
+    # SIMD lanes, the third term joining lane 0): (x + z) + y; no fused multiply-add.
+    # tests/test_kernels.py::test_dot3_matches_einsum guards it.
+    return (ax * bx + az * bz) + ay * by
+
+
+@numba.njit(**_JIT)
+def _segment_crosses(p0, p1, tri):
+    """Möller–Trumbore on one segment and one (3, 3) triangle; proximity.segments_cross_triangles."""
+    ax, ay, az = tri[0, 0], tri[0, 1], tri[0, 2]
+    dx, dy, dz = p1[0] - p0[0], p1[1] - p0[1], p1[2] - p0[2]
+    e1x, e1y, e1z = tri[1, 0] - ax, tri[1, 1] - ay, tri[1, 2] - az
+    e2x, e2y, e2z = tri[2, 0] - ax, tri[2, 1] - ay, tri[2, 2] - az
+    pvx = dy * e2z - dz * e2y
+    pvy = dz * e2x - dx * e2z
+    pvz = dx * e2y - dy * e2x
+    det = _dot3(e1x, e1y, e1z, pvx, pvy, pvz)
+    nx = e1y * e2z - e1z * e2y
+    ny = e1z * e2x - e1x * e2z
+    nz = e1x * e2y - e1y * e2x
+    scale = math.sqrt(_dot3(dx, dy, dz, dx, dy, dz) * _dot3(nx, ny, nz, nx, ny, nz))
+    if not (abs(det) > 1e-14 * scale):
+        return False
+    inv = 1.0 / det
+    tx, ty, tz = p0[0] - ax, p0[1] - ay, p0[2] - az
+    u = _dot3(tx, ty, tz, pvx, pvy, pvz) * inv
+    qx = ty * e1z - tz * e1y
+    qy = tz * e1x - tx * e1z
+    qz = tx * e1y - ty * e1x
+    v = _dot3(dx, dy, dz, qx, qy, qz) * inv
+    t = _dot3(e2x, e2y, e2z, qx, qy, qz) * inv
+    s = _BARY_SLACK
+    return (u >= -s) and (v >= -s) and (u + v <= 1 + s) and (t >= 0.0) and (t <= 1.0)
+
+
+@numba.njit(**_JIT)
+def _closest_on_triangle(px, py, pz, tri, out):
+    """Ericson §5.1.5 on one point and one triangle, as proximity.closest_point_on_triangles.
+
+    Writes the closest point to out[0:3] and returns the region code.
+    """
+    ax, ay, az = tri[0, 0], tri[0, 1], tri[0, 2]
+    bx, by, bz = tri[1, 0], tri[1, 1], tri[1, 2]
+    cx, cy, cz = tri[2, 0], tri[2, 1], tri[2, 2]
+    abx, aby, abz = bx - ax, by - ay, bz - az
+    acx, acy, acz = cx - ax, cy - ay, cz - az
+    apx, apy, apz = px - ax, py - ay, pz - az
+    bpx, bpy, bpz = px - bx, py - by, pz - bz
+    cpx, cpy, cpz = px - cx, py - cy, pz - cz
+    d1 = _dot3(abx, aby, abz, apx, apy, apz)
+    d2 = _dot3(acx, acy, acz, apx, apy, apz)
+    d3 = _dot3(abx, aby, abz, bpx, bpy, bpz)
+    d4 = _dot3(acx, acy, acz, bpx, bpy, bpz)
+    d5 = _dot3(abx, aby, abz, cpx, cpy, cpz)
+    d6 = _dot3(acx, acy, acz, cpx, cpy, cpz)
+    vc = d1 * d4 - d3 * d2
+    vb = d5 * d2 - d1 * d6
+    va = d3 * d6 - d5 * d4
+    # Priority of the numpy version (its later assignments win).
+    if (d1 <= 0) and (d2 <= 0):
+        region = _VA
+        v, w = 0.0, 0.0
+    elif (d3 >= 0) and (d4 <= d3):
+        region = _VB
+        v, w = 1.0, 0.0
+    elif (vc <= 0) and (d1 >= 0) and (d3 <= 0):
+        region = _EAB
+        v = d1 / (d1 - d3) if d1 - d3 != 0 else 0.0
+        w = 0.0
+    elif (d6 >= 0) and (d5 <= d6):
+        region = _VC
+        v, w = 0.0, 1.0
+    elif (vb <= 0) and (d2 >= 0) and (d6 <= 0):
+        region = _ECA
+        v = 0.0
+        w = d2 / (d2 - d6) if d2 - d6 != 0 else 0.0
+    elif (va <= 0) and ((d4 - d3) >= 0) and ((d5 - d6) >= 0):
+        region = _EBC
+        e43 = d4 - d3
+        e56 = d5 - d6
+        t_bc = e43 / (e43 + e56) if e43 + e56 != 0 else 0.0
+        v = 1.0 - t_bc
+        w = t_bc
+    else:
+        region = _FACE
+        denom = va + vb + vc
+        v = vb / denom if denom != 0 else 0.0
+        w = vc / denom if denom != 0 else 0.0
+    out[0] = ax + v * abx + w * acx
+    out[1] = ay + v * aby + w * acy
+    out[2] = az + v * abz + w * acz
+    return region
+
+
+# --------------------------------------------------------- fan crossings
+@numba.njit(**_JIT)
+def _fan_kernel(o, e, valid, reach, grid_origin, s, dims, cstart, ccount, citems, pcentre, pradius, pparent,
+                tri, fnormal, rmax):
+    n, c = valid.shape
+    hit = np.zeros((n, c), dtype=np.bool_)
+    breach = reach + rmax  # near_pairs: bucket range grown by the largest piece radius
+    lo = np.empty(3, dtype=np.int64)
+    hi = np.empty(3, dtype=np.int64)
+    # Per-row list of the pieces near the origin (each piece at most once: centre buckets).
+    cap = citems.shape[0]
+    l_face = np.empty(cap, dtype=np.int64)
+    l_cx = np.empty(cap)
+    l_cy = np.empty(cap)
+    l_cz = np.empty(cap)
+    l_box = np.empty(cap)
+    l_so = np.empty(cap)
+    l_cc = np.empty(cap)
+    l_r2 = np.empty(cap)
+    c_j = np.empty(c, dtype=np.int64)
+    c_mx = np.empty(c)
+    c_my = np.empty(c)
+    c_mz = np.empty(c)
+    c_ok = np.empty(c, dtype=np.bool_)
+    for r in range(n):
+        nvalid = 0
+        for j in range(c):
+            if valid[r, j]:
+                nvalid += 1
+        if nvalid == 0:
+            continue
+        ox, oy, oz = o[r, 0], o[r, 1], o[r, 2]
+        far = False
+        for k in range(3):
+            pk = o[r, k]
+            if (pk + breach < grid_origin[k]) or (pk - breach > grid_origin[k] + dims[k] * s):
+                far = True
+            lo[k] = min(max(np.int64(math.floor(((pk - breach) - grid_origin[k]) / s)), 0), dims[k] - 1)
+            hi[k] = min(max(np.int64(math.floor(((pk + breach) - grid_origin[k]) / s)), 0), dims[k] - 1)
+        if far:
+            continue
+        # Gather: the ball screen of near_pairs, and per piece the quantities of its plane.
+        m = 0
+        for bx in range(lo[0], hi[0] + 1):
+            for by in range(lo[1], hi[1] + 1):
+                for bz in range(lo[2], hi[2] + 1):
+                    flat = (bx * dims[1] + by) * dims[2] + bz
+                    for pos in range(cstart[flat], cstart[flat] + ccount[flat]):
+                        t = citems[pos]
+                        dcx, dcy, dcz = ox - pcentre[t, 0], oy - pcentre[t, 1], oz - pcentre[t, 2]
+                        rr = reach + pradius[t]
+                        if not (_dot3(dcx, dcy, dcz, dcx, dcy, dcz) <= rr * rr):
+                            continue
+                        f = pparent[t]
+                        l_face[m] = f
+                        l_so[m] = _dot3(ox - tri[f, 0, 0], oy - tri[f, 0, 1], oz - tri[f, 0, 2],
+                                        fnormal[f, 0], fnormal[f, 1], fnormal[f, 2])
+                        cx = pcentre[t, 0] - ox
+                        cy = pcentre[t, 1] - oy
+                        cz = pcentre[t, 2] - oz
+                        l_cx[m] = cx
+                        l_cy[m] = cy
+                        l_cz[m] = cz
+                        l_cc[m] = _dot3(cx, cy, cz, cx, cy, cz)
+                        l_r2[m] = pradius[t] * pradius[t] * (1 + 1e-9)
+                        # Half-width of the box prefilter: the radius plus a margin far above the
+                        # round-off of the sphere screen below (~1e-8 (reach + radius)).
+                        l_box[m] = pradius[t] + 1e-6 * (pradius[t] + reach)
+                        m += 1
+        if m == 0:
+            continue
+        # Columns of the row as contiguous centre/half-extent arrays of their boxes.
+        nc = 0
+        for j in range(c):
+            if not valid[r, j]:
+                continue
+            dx, dy, dz = e[r, j, 0] - ox, e[r, j, 1] - oy, e[r, j, 2] - oz
+            c_j[nc] = j
+            c_mx[nc] = 0.5 * dx
+            c_my[nc] = 0.5 * dy
+            c_mz[nc] = 0.5 * dz
+            nc += 1
+        for i in range(m):
+            w = l_box[i]
+            px, py, pz = l_cx[i], l_cy[i], l_cz[i]
+            # Conservative prefilter (not in the numpy path): the point of the segment the
+            # sphere screen accepts lies in the segment's box, so the piece's sphere (grown
+            # by the margin) must meet that box. Branch-free over the columns.
+            for jj in range(nc):
+                mx, my, mz = c_mx[jj], c_my[jj], c_mz[jj]
+                c_ok[jj] = (abs(px - mx) <= w + abs(mx)) & (abs(py - my) <= w + abs(my)) & (abs(pz - mz) <= w + abs(mz))
+            for jj in range(nc):
+                if not c_ok[jj]:
+                    continue
+                j = c_j[jj]
+                if hit[r, j]:
+                    continue
+                dx, dy, dz = e[r, j, 0] - ox, e[r, j, 1] - oy, e[r, j, 2] - oz
+                dd = _dot3(dx, dy, dz, dx, dy, dz)
+                f = l_face[i]
+                s_o = l_so[i]
+                s_j = dx * fnormal[f, 0]
+                s_j += dy * fnormal[f, 1]
+                s_j += dz * fnormal[f, 2]
+                s_j += s_o
+                # Plane-side screen: the segment reaches the plane within [0, 1].
+                tau = s_o / (s_o - s_j)
+                if not ((tau >= 0.0) and (tau <= 1.0)):
+                    continue
+                dot = dx * l_cx[i]
+                dot += dy * l_cy[i]
+                dot += dz * l_cz[i]
+                q = tau * dd
+                q -= 2.0 * dot
+                q *= tau
+                q += l_cc[i]
+                if not (q <= l_r2[i]):
+                    continue
+                if _segment_crosses(o[r], e[r, j], tri[f]):
+                    hit[r, j] = True
+    return hit
+
+
+def segments_cross_fan(index, origins, ends, valid, reach: float) -> np.ndarray:
+    """Whether segments fanning out from one origin per row cross the surface.
+
+    Compiled equivalent of :meth:`ibprep.proximity.TriangleIndex.segments_cross_fan`
+    (same screens, same exact test, same result).
+
+    Parameters
+    ----------
+    index : TriangleIndex — the bucketed surface.
+    origins : (n, 3) float — metres; one start per row.
+    ends : (n, c, 3) float — metres; the ends of each row's segments.
+    valid : (n, c) bool — which segments to test (others come back false).
+    reach : float — metres; no segment is longer than this.
+
+    Returns
+    -------
+    (n, c) bool — true where the closed segment meets a closed triangle
+    (through an edge or a corner counts; in the triangle's plane does not).
+    """
+    o = np.ascontiguousarray(origins, dtype=float).reshape(-1, 3)
+    valid = np.ascontiguousarray(valid, dtype=bool)
+    n, c = valid.shape
+    e = np.ascontiguousarray(ends, dtype=float).reshape(n, c, 3)
+    if n == 0 or c == 0:
+        return np.zeros((n, c), dtype=bool)
+    return _fan_kernel(
+        o, e, valid, float(reach), np.asarray(index.origin, dtype=float), float(index.bucket_size),
+        np.asarray(index.dims, dtype=np.int64), index.centre_start, index.centre_count, index.centre_items,
+        index.piece_centre, index.piece_radius, index.piece_parent, index.tri, index.face_normal,
+        float(index.piece_radius.max(initial=0.0)),
+    )
+
+
+# ---------------------------------------------------------- closest point
+@numba.njit(**_JIT)
+def _ring_pass(px, py, pz, qb, ring, dims, bstart, bcount, bitems, pcentre, pradius, pwitness, pparent, tri,
+               ub_in, state, qbuf, first_pass):
+    """Visit the pieces of the buckets in ring ``ring`` around qb, in numpy's offset order.
+
+    First pass: returns min(witness distance) over the ring's pairs (inf if none).
+    Second pass: screens with ub_in and updates state = [best_d2, face, region, qx, qy, qz].
+    """
+    ub = np.inf
+    lo0, hi0 = max(qb[0] - ring, 0), min(qb[0] + ring, dims[0] - 1)
+    lo1, hi1 = max(qb[1] - ring, 0), min(qb[1] + ring, dims[1] - 1)
+    lo2, hi2 = max(qb[2] - ring, 0), min(qb[2] + ring, dims[2] - 1)
+    lim = ub_in * (1 + 1e-12)
+    for bx in range(lo0, hi0 + 1):
+        shell_x = abs(bx - qb[0]) == ring
+        for by in range(lo1, hi1 + 1):
+            shell_xy = shell_x or abs(by - qb[1]) == ring
+            # Lexicographic offsets on the shell: whole z-range on an x/y face, else z = ±ring.
+            if shell_xy:
+                zs0, zs1, zstep = lo2, hi2, 1
+            else:
+                zs0, zs1, zstep = qb[2] - ring, qb[2] + ring, 2 * ring
+                if ring == 0:
+                    zstep = 1
+            bz = zs0
+            while bz <= zs1:
+                if bz >= lo2 and bz <= hi2:
+                    flat = (bx * dims[1] + by) * dims[2] + bz
+                    for pos in range(bstart[flat], bstart[flat] + bcount[flat]):
+                        t = bitems[pos]
+                        if first_pass:
+                            gx, gy, gz = px - pwitness[t, 0], py - pwitness[t, 1], pz - pwitness[t, 2]
+                            dg = math.sqrt(_dot3(gx, gy, gz, gx, gy, gz))
+                            if dg < ub:
+                                ub = dg
+                        else:
+                            cx, cy, cz = px - pcentre[t, 0], py - pcentre[t, 1], pz - pcentre[t, 2]
+                            dc = math.sqrt(_dot3(cx, cy, cz, cx, cy, cz))
+                            if not (dc - pradius[t] <= lim):
+                                continue
+                            f = pparent[t]
+                            region = _closest_on_triangle(px, py, pz, tri[f], qbuf)
+                            dx, dy, dz = qbuf[0] - px, qbuf[1] - py, qbuf[2] - pz
+                            d2 = _dot3(dx, dy, dz, dx, dy, dz)
+                            if d2 < state[0]:
+                                state[0] = d2
+                                state[1] = f
+                                state[2] = region
+                                state[3] = qbuf[0]
+                                state[4] = qbuf[1]
+                                state[5] = qbuf[2]
+                bz += zstep
+    return ub
+
+
+@numba.njit(**_JIT)
+def _closest_kernel(p, grid_origin, s, dims, q_max, max_distance, bstart, bcount, bitems, pcentre, pradius,
+                    pwitness, pparent, tri, faces, fnormal, enormal, vnormal):
+    n = p.shape[0]
+    point = np.zeros((n, 3))
+    dist = np.zeros(n)
+    normal = np.zeros((n, 3))
+    face = np.full(n, -1, dtype=np.int64)
+    exact = np.zeros(n, dtype=np.bool_)
+    qb = np.empty(3, dtype=np.int64)
+    state = np.empty(6)
+    qbuf = np.empty(3)
+    for i in range(n):
+        px, py, pz = p[i, 0], p[i, 1], p[i, 2]
+        for k in range(3):
+            qb[k] = np.int64(math.floor((p[i, k] - grid_origin[k]) / s))
+        state[0] = np.inf
+        state[1] = -1.0
+        state[2] = 0.0
+        state[3] = 0.0
+        state[4] = 0.0
+        state[5] = 0.0
+        lower = 0.0
+        ex = False
+        finished = False
+        ring = 0
+        while ring <= q_max:
+            ub = _ring_pass(px, py, pz, qb, ring, dims, bstart, bcount, bitems, pcentre, pradius, pwitness,
+                            pparent, tri, 0.0, state, qbuf, True)
+            if ub < np.inf:  # the ring has pairs
+                ub = min(ub, math.sqrt(state[0]))
+                _ring_pass(px, py, pz, qb, ring, dims, bstart, bcount, bitems, pcentre, pradius, pwitness,
+                           pparent, tri, ub, state, qbuf, False)
+            reach = ring * s
+            if math.sqrt(state[0]) <= reach:
+                ex = True
+                finished = True
+                break
+            if reach >= max_distance:
+                lower = min(reach, max_distance)
+                finished = True
+                break
+            ring += 1
+        if not finished:  # the whole bucket grid was searched
+            ex = state[0] < np.inf
+        d = math.sqrt(state[0])
+        dist[i] = d if ex else min(lower, d)
+        exact[i] = ex
+        point[i, 0] = state[3]
+        point[i, 1] = state[4]
+        point[i, 2] = state[5]
+        f = np.int64(state[1])
+        if ex and f >= 0:
+            face[i] = f
+            reg = np.int64(state[2])
+            if reg == _VA or reg == _VB or reg == _VC:
+                vtx = faces[f, reg - _VA]
+                for k in range(3):
+                    normal[i, k] = vnormal[vtx, k]
+            elif reg == _EAB or reg == _EBC or reg == _ECA:
+                for k in range(3):
+                    normal[i, k] = enormal[f, reg - _EAB, k]
+            else:
+                for k in range(3):
+                    normal[i, k] = fnormal[f, k]
+    return point, dist, normal, face, exact
+
+
+def closest(index, points, *, max_distance: float = math.inf) -> ClosestPoints:
+    """Closest surface point, distance and outward pseudo-normal of each point.
+
+    Compiled equivalent of :meth:`ibprep.proximity.TriangleIndex.closest`: the
+    same ring-by-ring bucket search, witness/sphere screens, tie-breaking (the
+    first closest triangle in bucket order) and lower-bound mode.
+
+    Parameters
+    ----------
+    index : TriangleIndex — the bucketed surface.
+    points : (n, 3) float — metres, world frame.
+    max_distance : float — metres; the search stops once it has ruled out any
+        triangle closer than this, and the answer is then a lower bound
+        (``exact`` false). ``inf`` (default) searches until exact.
+
+    Returns
+    -------
+    ClosestPoints
+    """
+    p = np.ascontiguousarray(points, dtype=float).reshape(-1, 3)
+    n = p.shape[0]
+    if n == 0:
+        return ClosestPoints(np.zeros((0, 3)), np.zeros(0), np.zeros((0, 3)), np.full(0, -1, np.int64),
+                             np.zeros(0, bool))
+    dims = np.asarray(index.dims, dtype=np.int64)
+    qb = np.floor((p - index.origin) / index.bucket_size).astype(np.int64)
+    q_max = int(max(index.dims)) + int(np.max(np.abs(qb - np.clip(qb, 0, dims - 1)))) + 1
+    # State keeps the face index in a float slot: exact below 2**53 faces.
+    point, dist, normal, face, exact = _closest_kernel(
+        p, np.asarray(index.origin, dtype=float), float(index.bucket_size), dims, q_max, float(max_distance),
+        index.bucket_start, index.bucket_count, index.bucket_items, index.piece_centre, index.piece_radius,
+        index.piece_witness, index.piece_parent, index.tri, index.faces, index.face_normal, index.edge_normal,
+        index.vertex_normal,
+    )
+    return ClosestPoints(point=point, distance=dist, normal=normal, face=face, exact=exact)
+
+
+# ------------------------------------------------------------- WLS solve
+@numba.njit(**_JIT)
+def _tridiagonal_eigvals(d, e):
+    """Eigenvalues (in d, unordered) of the symmetric tridiagonal matrix with diagonal d and
+    sub-diagonal e[:-1] (e[-1] unused), by the implicit QL algorithm with Wilkinson-type
+    shifts (Press et al., Numerical Recipes, 3rd ed. 2007, §11.4 routine tqli)."""
+    m = d.shape[0]
+    for l in range(m):
+        it = 0
+        while True:
+            mm = l
+            while mm < m - 1:
+                dd = abs(d[mm]) + abs(d[mm + 1])
+                if abs(e[mm]) + dd == dd:
+                    break
+                mm += 1
+            if mm == l or it >= 60:
+                break
+            it += 1
+            g = (d[l + 1] - d[l]) / (2.0 * e[l])
+            r = math.sqrt(g * g + 1.0)
+            g = d[mm] - d[l] + e[l] / (g + (r if g >= 0.0 else -r))
+            sn = 1.0
+            cs = 1.0
+            p = 0.0
+            i = mm - 1
+            underflow = False
+            while i >= l:
+                f = sn * e[i]
+                b = cs * e[i]
+                r = math.sqrt(f * f + g * g)  # entries are O(|G|): no overflow; underflow is handled below
+                e[i + 1] = r
+                if r == 0.0:
+                    d[i + 1] -= p
+                    e[mm] = 0.0
+                    underflow = True
+                    break
+                sn = f / r
+                cs = g / r
+                g = d[i + 1] - p
+                r = (d[i] - g) * sn + 2.0 * cs * b
+                p = sn * r
+                d[i + 1] = g + p
+                g = cs * r - b
+                i -= 1
+            if underflow:
+                continue
+            d[l] -= p
+            e[l] = g
+            e[mm] = 0.0
+
+
+@numba.njit(**_JIT)
+def _extreme_eigvals(G, d, e2, v, p_):  # e2: sub-diagonal work array
+    """Smallest and largest eigenvalues of the symmetric (m, m) G (overwritten).
+
+    Householder reduction to tridiagonal form (Golub & Van Loan, Matrix Computations,
+    §8.3.1), then implicit QL. Absolute accuracy about the round-off of |G|, as
+    LAPACK's dsyevd that numpy.linalg.eigvalsh calls.
+    """
+    m = G.shape[0]
+    for k in range(m - 2):
+        nrm2 = 0.0
+        for j in range(k + 1, m):
+            nrm2 += G[j, k] * G[j, k]
+        nrm = math.sqrt(nrm2)
+        if nrm == 0.0:
+            continue
+        alpha = -nrm if G[k + 1, k] >= 0.0 else nrm
+        vv = 0.0
+        for j in range(k + 1, m):
+            v[j] = G[j, k]
+        v[k + 1] -= alpha
+        for j in range(k + 1, m):
+            vv += v[j] * v[j]
+        beta = 2.0 / vv
+        # p = beta G v, w = p - (beta / 2)(p . v) v, G <- G - v w^T - w v^T on the trailing block.
+        pv = 0.0
+        for i in range(k + 1, m):
+            s = 0.0
+            for j in range(k + 1, m):
+                s += G[i, j] * v[j]
+            p_[i] = beta * s
+            pv += p_[i] * v[i]
+        half = 0.5 * beta * pv
+        for i in range(k + 1, m):
+            p_[i] -= half * v[i]
+        for i in range(k + 1, m):
+            for j in range(k + 1, m):
+                G[i, j] -= v[i] * p_[j] + p_[i] * v[j]
+        G[k + 1, k] = alpha
+        G[k, k + 1] = alpha
+    for i in range(m):
+        d[i] = G[i, i]
+        e2[i] = G[i + 1, i] if i < m - 1 else 0.0
+    _tridiagonal_eigvals(d, e2)
+    lmin = np.inf
+    lmax = -np.inf
+    for i in range(m):
+        lmin = min(lmin, d[i])
+        lmax = max(lmax, d[i])
+    return lmin, lmax
+
+
+@numba.njit(**_JIT)
+def _wls_kernel(A, sw):
+    n, r, m = A.shape
+    a = np.zeros((n, r))
+    cond = np.full(n, np.inf)
+    Bt = np.empty((m, r))  # column k of diag(sw) A, rows with sw = 0 dropped, contiguous
+    V = np.empty((m, r))  # Householder vectors (row k: entries k..nk-1)
+    beta = np.empty(m)
+    G = np.empty((m, m))
+    d = np.empty(m)
+    e2 = np.empty(m)
+    v = np.empty(m)
+    p_ = np.empty(m)
+    y = np.empty(r)
+    rows = np.empty(r, dtype=np.int64)
+    for i in range(n):
+        # Rows of zero weight (padding) change neither R nor the weights: drop them.
+        nk = 0
+        for j in range(r):
+            if sw[i, j] != 0.0:
+                rows[nk] = j
+                nk += 1
+        if nk < m:
+            continue  # fewer weighted rows than unknowns: rank deficient
+        for jj in range(nk):
+            j = rows[jj]
+            for k in range(m):
+                Bt[k, jj] = sw[i, j] * A[i, j, k]
+        # Householder QR, Bt -> R^T (R[k, p] = Bt[p, k] for k <= p).
+        for k in range(m):
+            nrm2 = 0.0
+            for j in range(k, nk):
+                nrm2 += Bt[k, j] * Bt[k, j]
+            nrm = math.sqrt(nrm2)
+            if nrm == 0.0:
+                beta[k] = 0.0
+                continue
+            alpha = -nrm if Bt[k, k] >= 0.0 else nrm
+            for j in range(k, nk):
+                V[k, j] = Bt[k, j]
+            V[k, k] -= alpha
+            vv = 0.0
+            for j in range(k, nk):
+                vv += V[k, j] * V[k, j]
+            bk = 2.0 / vv
+            beta[k] = bk
+            Bt[k, k] = alpha
+            for j in range(k + 1, nk):
+                Bt[k, j] = 0.0
+            for col in range(k + 1, m):
+                sdot = 0.0
+                for j in range(k, nk):
+                    sdot += V[k, j] * Bt[col, j]
+                sdot *= bk
+                for j in range(k, nk):
+                    Bt[col, j] -= sdot * V[k, j]
+        # Condition from the eigenvalues of R^T R, as the numpy path.
+        for p in range(m):
+            for q in range(p, m):
+                sg = 0.0
+                for k in range(p + 1):
+                    sg += Bt[p, k] * Bt[q, k]
+                G[p, q] = sg
+                G[q, p] = sg
+        lmin, lmax = _extreme_eigvals(G, d, e2, v, p_)
+        dmin = np.inf
+        dmax = 0.0
+        for k in range(m):
+            rkk = abs(Bt[k, k])
+            dmin = min(dmin, rkk)
+            dmax = max(dmax, rkk)
+        if not (lmin > _GRAM_RTOL * lmax) or not (dmin > _RANK_RTOL * dmax):
+            continue  # rank deficient: zero weights, infinite condition
+        cond[i] = math.sqrt(lmax / lmin)
+        # c_0 = (Q y) . (sw f) with R^T y = e_0: forward substitution, then the reflectors.
+        for k in range(nk):
+            y[k] = 0.0
+        for k in range(m):
+            sy = 1.0 if k == 0 else 0.0
+            for j in range(k):
+                sy -= Bt[k, j] * y[j]
+            y[k] = sy / Bt[k, k]
+        for k in range(m - 1, -1, -1):
+            if beta[k] == 0.0:
+                continue
+            sdot = 0.0
+            for j in range(k, nk):
+                sdot += V[k, j] * y[j]
+            sdot *= beta[k]
+            for j in range(k, nk):
+                y[j] -= sdot * V[k, j]
+        for jj in range(nk):
+            j = rows[jj]
+            a[i, j] = y[jj] * sw[i, j]
+    return a, cond
+
+
+def wls_value_weights(A, sw):
+    """Weights of the data in the least-squares value at the origin, and the condition.
+
+    Compiled equivalent of ``ibprep.stencils._wls_value_weights``: Householder QR
+    of diag(sw) A per stencil, the value weights from R and the reflectors, the
+    condition number from the extreme eigenvalues of R^T R (tridiagonal reduction and
+    implicit QL) with the same
+    rank tests. Agrees with LAPACK's results to round-off: weights to about
+    1e-15 times the condition, the condition itself to about 1e-16 times its square.
+
+    Parameters
+    ----------
+    A : (n, r, m) float — design matrix (basis at data rows); zero rows allowed.
+    sw : (n, r) float — square roots of the row weights; 0 for padded rows.
+
+    Returns
+    -------
+    a : (n, r) float — the fitted constant term c_0 = a · data.
+    cond : (n,) float — 2-norm condition number of diag(sw) A (inf if rank deficient).
+    """
+    A = np.ascontiguousarray(A, dtype=float)
+    sw = np.ascontiguousarray(sw, dtype=float)
+    n, r, m = A.shape
+    if r < m or n == 0:
+        return np.zeros((n, r)), np.full(n, np.inf)
+    return _wls_kernel(A, sw)

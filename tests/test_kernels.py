@@ -1,0 +1,281 @@
+"""Tests for ibprep.kernels: the compiled kernels against the numpy paths they replace.
+
+The reference for every check here is this project's own numpy implementation
+(ibprep.proximity.TriangleIndex.segments_cross_fan / .closest, and
+ibprep.stencils._wls_value_weights), which test_proximity.py and test_stencils.py
+check against trimesh, libigl and published formulas. Booleans and indices must be
+equal; floats equal bit for bit where the kernel reproduces the numpy expression
+order, else within the named tolerances below.
+"""
+
+import numpy as np
+import pytest
+import trimesh
+
+from ibprep import Grid, kernels, proximity
+from ibprep.proximity import TriangleIndex
+from ibprep.triangles import extrude_loops
+
+
+def _sphere():
+    m = trimesh.creation.icosphere(subdivisions=3, radius=1.0)
+    return m.vertices, m.faces, 0.2
+
+
+def _wing():
+    # NACA 0012-like section extruded along z (a straight wing with long slivers).
+    x = 0.5 * (1 - np.cos(np.linspace(0, np.pi, 41)))
+    yt = 5 * 0.12 * (0.2969 * np.sqrt(x) - 0.1260 * x - 0.3516 * x**2 + 0.2843 * x**3 - 0.1036 * x**4)
+    loop = np.vstack([np.column_stack([x, yt])[::-1], np.column_stack([x, -yt])[1:-1]])
+    v, f = extrude_loops([loop], half_depth=0.5)
+    return v, f, 0.05
+
+
+def _plate():
+    # Thin plate: two large faces 1 % of the length apart.
+    m = trimesh.creation.box(extents=(1.0, 1.0, 0.01))
+    return m.vertices, m.faces, 0.1
+
+
+SURFACES = {"sphere": _sphere, "wing": _wing, "plate": _plate}
+
+
+def _fan_inputs(v, f, seed, n=300, c=24, scale=0.3):
+    rng = np.random.default_rng(seed)
+    lo, hi = v.min(axis=0), v.max(axis=0)
+    span = hi - lo
+    o = rng.uniform(lo - 0.2 * span, hi + 0.2 * span, (n, 3))
+    e = o[:, None, :] + rng.normal(scale=scale, size=(n, c, 3)) * span.max()
+    # Some segments end exactly on vertices and edge midpoints: the touching cases.
+    k = min(n, v.shape[0])
+    e[:k, 0] = v[:k]
+    mid = 0.5 * (v[f[:, 0]] + v[f[:, 1]])
+    k2 = min(n, mid.shape[0])
+    e[:k2, 1] = mid[:k2]
+    valid = rng.random((n, c)) < 0.8
+    reach = float(np.linalg.norm(e - o[:, None, :], axis=2).max()) * (1 + 1e-9)
+    return o, e, valid, reach
+
+
+def test_dot3_matches_einsum():
+    # The kernels reproduce numpy's einsum("ij,ij->i") summation order for three terms;
+    # bit-for-bit agreement below depends on it.
+    rng = np.random.default_rng(0)
+    a = rng.normal(size=(20000, 3))
+    b = rng.normal(size=(20000, 3))
+    ref = np.einsum("ij,ij->i", a, b)
+    got = np.array([kernels._dot3(*a[i], *b[i]) for i in range(2000)])
+    np.testing.assert_array_equal(got, ref[:2000])
+
+
+def test_constants_match_numpy_modules():
+    from ibprep import stencils
+
+    assert kernels._BARY_SLACK == proximity._BARY_SLACK
+    assert (kernels._FACE, kernels._VA, kernels._EAB, kernels._ECA) == (
+        proximity._FACE, proximity._VA, proximity._EAB, proximity._ECA)
+    assert kernels._RANK_RTOL == stencils._RANK_RTOL
+    assert kernels._GRAM_RTOL == stencils._GRAM_RTOL
+
+
+@pytest.mark.parametrize("name", sorted(SURFACES))
+@pytest.mark.parametrize("seed", [1, 2])
+def test_segments_cross_fan_equals_numpy(name, seed):
+    v, f, bucket = SURFACES[name]()
+    idx = TriangleIndex(v, f, bucket_size=bucket)
+    o, e, valid, reach = _fan_inputs(v, f, seed)
+    ref = idx.segments_cross_fan(o, e, valid, reach)
+    got = kernels.segments_cross_fan(idx, o, e, valid, reach)
+    assert got.dtype == bool and got.shape == valid.shape
+    assert 0 < ref.sum() < valid.sum()  # the inputs exercise both outcomes
+    np.testing.assert_array_equal(got, ref)
+    assert not got[~valid].any()
+
+
+def test_segments_cross_fan_touching_and_in_plane_cases():
+    # Plate top face z = 0.005: a segment ending exactly on a vertex or an edge counts
+    # as crossing; a segment lying in the face's plane does not (Möller & Trumbore
+    # 1997 with the slack of proximity.segments_cross_triangles).
+    v, f, bucket = _plate()
+    idx = TriangleIndex(v, f, bucket_size=bucket)
+    top = v[v[:, 2] > 0][0]
+    o = np.array([[top[0] * 0.5, top[1] * 0.5, 0.3]])
+    ends = np.array([[top, [0.0, 0.0, 0.005], [0.0, 0.0, 0.1], [0.2, 0.1, 0.005]]])
+    o_plane = np.array([[-0.2, -0.1, 0.005]])
+    valid = np.ones((1, 4), bool)
+    got = kernels.segments_cross_fan(idx, o, ends, valid, 1.0)
+    np.testing.assert_array_equal(got, idx.segments_cross_fan(o, ends, valid, 1.0))
+    np.testing.assert_array_equal(got[0], [True, True, False, True])
+    in_plane = np.array([[[0.2, 0.1, 0.005]]])
+    g2 = kernels.segments_cross_fan(idx, o_plane, in_plane, np.ones((1, 1), bool), 1.0)
+    assert g2[0, 0] == idx.segments_cross_fan(o_plane, in_plane, np.ones((1, 1), bool), 1.0)[0, 0]
+
+
+def test_segments_cross_fan_empty_and_all_invalid():
+    v, f, bucket = _sphere()
+    idx = TriangleIndex(v, f, bucket_size=bucket)
+    assert kernels.segments_cross_fan(idx, np.zeros((0, 3)), np.zeros((0, 4, 3)), np.zeros((0, 4), bool), 1.0).shape == (0, 4)
+    o = np.zeros((3, 3))
+    e = np.ones((3, 2, 3)) * 2.0
+    got = kernels.segments_cross_fan(idx, o, e, np.zeros((3, 2), bool), 4.0)
+    assert got.shape == (3, 2) and not got.any()
+
+
+def _assert_closest_equal(got, ref):
+    # Same algorithm and expression order: every field equal bit for bit.
+    for name in ("point", "distance", "normal", "face", "exact"):
+        a, b = getattr(got, name), getattr(ref, name)
+        assert a.shape == b.shape and a.dtype == b.dtype, name
+        np.testing.assert_array_equal(a, b, err_msg=name)
+
+
+@pytest.mark.parametrize("name", sorted(SURFACES))
+def test_closest_equals_numpy(name):
+    v, f, bucket = SURFACES[name]()
+    idx = TriangleIndex(v, f, bucket_size=bucket)
+    rng = np.random.default_rng(5)
+    lo, hi = v.min(axis=0), v.max(axis=0)
+    span = hi - lo
+    p = np.vstack([
+        rng.uniform(lo - 0.3 * span, hi + 0.3 * span, (1500, 3)),
+        v + rng.normal(scale=1e-3, size=v.shape),  # near vertices: vertex/edge regions, ties
+        v[:50],  # on the surface
+        [hi + 0.6 * span],  # outside the bucket grid
+    ])
+    ref = idx.closest(p)
+    got = kernels.closest(idx, p)
+    _assert_closest_equal(got, ref)
+    assert got.exact.all()
+    # Reference library: trimesh.proximity.closest_point distances, as test_proximity.py.
+    _, d_ref, _ = trimesh.proximity.closest_point(trimesh.Trimesh(v, f, process=False), p[:300])
+    np.testing.assert_allclose(got.distance[:300], d_ref, atol=1e-12)  # round-off only, metres
+
+
+@pytest.mark.parametrize("max_distance", [0.0, 0.02, 0.15])
+def test_closest_lower_bound_mode_equals_numpy(max_distance):
+    v, f, bucket = _wing()
+    idx = TriangleIndex(v, f, bucket_size=bucket)
+    p = np.random.default_rng(6).uniform(-0.5, 1.5, (800, 3))
+    ref = idx.closest(p, max_distance=max_distance)
+    got = kernels.closest(idx, p, max_distance=max_distance)
+    _assert_closest_equal(got, ref)
+    assert (~got.exact).any() and (got.face[~got.exact] == -1).all()
+
+
+def test_closest_with_region_box_and_empty_input():
+    v, f, bucket = _sphere()
+    idx = TriangleIndex(v, f, bucket_size=bucket, region_lower=(0.0, -2, -2), region_upper=(2, 2, 2))
+    p = np.random.default_rng(7).uniform(-1.5, 1.5, (500, 3))
+    _assert_closest_equal(kernels.closest(idx, p), idx.closest(p))
+    empty = kernels.closest(idx, np.zeros((0, 3)))
+    assert empty.point.shape == (0, 3) and empty.face.shape == (0,)
+
+
+def _stencil_calls(monkeypatch, case):
+    """Run build_stencils on a small sphere (3-D) or circle (2-D) and record the arguments of the hot calls."""
+    from ibprep import build_stencils
+    from ibprep.classify import CellTag
+    from scipy import ndimage
+
+    from ibprep import stencils
+
+    calls = {"fan": [], "closest": []}
+    fan0 = TriangleIndex.segments_cross_fan
+    closest0 = TriangleIndex.closest
+
+    def fan(self, *args):
+        calls["fan"].append((self, args))
+        return fan0(self, *args)
+
+    def clo(self, points, **kw):
+        calls["closest"].append((self, points, kw))
+        return closest0(self, points, **kw)
+
+    monkeypatch.setattr(TriangleIndex, "segments_cross_fan", fan)
+    monkeypatch.setattr(TriangleIndex, "closest", clo)
+    # Once the kernels are wired into stencils.py, record at those call sites instead.
+    if hasattr(stencils, "_segments_cross_fan"):
+        monkeypatch.setattr(stencils, "_segments_cross_fan", lambda index, *a: fan(index, *a))
+    if hasattr(stencils, "_closest"):
+        monkeypatch.setattr(stencils, "_closest", lambda index, p, **kw: clo(index, p, **kw))
+    h = 1.0 / 8
+    L = 1.0 + 6 * h
+    if case == "sphere-3d":
+        m = trimesh.creation.icosphere(subdivisions=3, radius=1.0)
+        grid = Grid(lower=(-L, -L, -L), upper=(L, L, L), spacing=h)
+        solid = trimesh.Trimesh(m.vertices, m.faces).contains(grid.centres().reshape(-1, 3)).reshape(grid.shape)
+        surface, kw = (m.vertices, m.faces), dict(interface="solid-side")
+    else:  # a 2-D polygon: the builder indexes an open band of side walls
+        th = np.linspace(0.0, 2.0 * np.pi, 200, endpoint=False)
+        surface = np.column_stack([np.cos(th), np.sin(th)])
+        grid = Grid(lower=(-L, -L), upper=(L, L), spacing=h)
+        solid = (grid.centres() ** 2).sum(axis=-1) < 0.99
+        kw = dict(interface="solid-side", method="image-point")
+    tags = np.full(solid.shape, CellTag.FLUID, np.uint8)
+    tags[solid] = CellTag.SOLID
+    st = ndimage.generate_binary_structure(solid.ndim, 1)
+    tags[solid & ndimage.binary_dilation(~solid, st)] = CellTag.INTERFACE
+    build_stencils(tags, grid, surface, **kw)
+    monkeypatch.undo()
+    return calls
+
+
+@pytest.mark.parametrize("case", ["sphere-3d", "circle-2d"])
+def test_kernels_on_the_stencil_builders_own_calls(monkeypatch, case):
+    calls = _stencil_calls(monkeypatch, case)
+    assert calls["fan"] and calls["closest"]
+    for idx, args in calls["fan"]:
+        np.testing.assert_array_equal(kernels.segments_cross_fan(idx, *args), idx.segments_cross_fan(*args))
+    for idx, points, kw in calls["closest"]:
+        _assert_closest_equal(kernels.closest(idx, points, **kw), idx.closest(points, **kw))
+
+
+def _design(seed, n=400, k=30, planar=False, pad=5):
+    from ibprep import stencils
+
+    rng = np.random.default_rng(seed)
+    xi = rng.uniform(-3, 3, (n, k + 1, 2 if planar else 3))
+    A = stencils._basis(xi, planar)
+    sw = np.sqrt(np.exp(-((2 * np.linalg.norm(xi, axis=2) / 4.0) ** 2)))
+    sw[:, k - pad : k] = 0.0  # padded rows
+    A[:, k - pad : k] = 0.0
+    return A, sw
+
+
+# Weights agree to round-off amplified by the condition (cond <= ~1e3 here): 1e-12 of the largest weight.
+WLS_WEIGHT_RTOL = 1e-12
+# The condition comes from the Gram eigenvalues in both paths; their round-off is ~1e-16 * cond^2.
+WLS_COND_RTOL = 1e-9
+
+
+@pytest.mark.parametrize("planar", [False, True])
+def test_wls_value_weights_match_lapack_path(planar):
+    # Reference: stencils._wls_value_weights (numpy.linalg.qr / eigvalsh / solve, i.e. LAPACK).
+    from ibprep import stencils
+
+    A, sw = _design(3, planar=planar)
+    a0, c0 = stencils._wls_value_weights(A, sw)
+    a1, c1 = kernels.wls_value_weights(A, sw)
+    assert np.isfinite(c0).all() and np.isfinite(c1).all()
+    scale = np.abs(a0).max(axis=1, keepdims=True)
+    np.testing.assert_allclose(a1 / scale, a0 / scale, rtol=0, atol=WLS_WEIGHT_RTOL)
+    np.testing.assert_allclose(c1, c0, rtol=WLS_COND_RTOL)
+    # Invariant (common practice, no single source): a fit whose basis holds the constant
+    # reproduces constant data exactly, so the value weights sum to one; padded rows weigh 0.
+    np.testing.assert_allclose(a1.sum(axis=1), 1.0, atol=1e-10)
+    assert (a1[sw == 0] == 0).all()
+
+
+def test_wls_value_weights_rank_deficient_and_too_few_rows():
+    from ibprep import stencils
+
+    A, sw = _design(4, n=60)
+    A[:20, :, 4] = A[:20, :, 1]  # two equal columns: rank deficient
+    sw[20:30, 6:] = 0.0  # only six weighted rows for ten unknowns
+    a0, c0 = stencils._wls_value_weights(A, sw)
+    a1, c1 = kernels.wls_value_weights(A, sw)
+    np.testing.assert_array_equal(np.isinf(c1), np.isinf(c0))
+    assert np.isinf(c1[:30]).all() and np.isfinite(c1[30:]).all()
+    assert (a1[:30] == 0).all()
+    a_few, c_few = kernels.wls_value_weights(np.ones((3, 5, 10)), np.ones((3, 5)))
+    assert a_few.shape == (3, 5) and np.isinf(c_few).all() and (a_few == 0).all()
