@@ -84,6 +84,7 @@ import numpy as np
 from .classify import CellTag
 from .errors import InputError
 from .grid import Grid
+from .kernels import closest as _closest, segments_cross_fan as _segments_cross_fan, wls_value_weights as _wls_kernel
 from .proximity import TriangleIndex
 from .triangles import _loops_from, as_triangles
 
@@ -677,7 +678,7 @@ def build_stencils(
         return lower3 + (ijk + 0.5) * h, ijk
 
     x0, ijk0 = centres_of(cells)
-    cp = index.closest(x0)
+    cp = _closest(index, x0)
     bpt = cp.point.copy()
     nrm = cp.normal.copy()
     if two_d:
@@ -774,7 +775,7 @@ def build_stencils(
     else:
         A[:, k] = _basis_normal_derivative(xb, nfit, planar)
     sw = np.sqrt(np.concatenate([w, wb[:, None]], axis=1))
-    a, cond = _wls_value_weights(A, sw)
+    a, cond = _wls_kernel(A, sw)
     wn = a[:, :k]
     ab = a[:, k] * (h if bc == "neumann" else 1.0)  # Neumann row was scaled by h
     if method == "image-point":
@@ -871,7 +872,7 @@ def _visible(index, good, cflat, origin, centres_of):
     valid[rows, slot] = True
     ends = np.zeros((good.shape[0], width, 3))
     ends[rows, slot] = xj
-    packed = index.segments_cross_fan(origin, ends, valid, longest * (1 + 1e-9))
+    packed = _segments_cross_fan(index, origin, ends, valid, longest * (1 + 1e-9))
     cross = np.zeros(good.shape, dtype=bool)
     cross[rows, cols] = packed[rows, slot]
     vis &= ~cross
