@@ -157,7 +157,6 @@ def _folder(path) -> Path:
 def _write_plots(case, report, folder: Path) -> list[Path]:
     from .classify import classify
     from .export import plot_motion, plot_steps, plot_tags_slice
-    from .sizing import swept_envelope
 
     out = [plot_motion(case.motion, case.chord, case.flow.speed, folder / "motion.png", title=case.title)]
     if report.steps:
@@ -168,12 +167,13 @@ def _write_plots(case, report, folder: Path) -> list[Path]:
         grid = case.grid.levels[level]
         v, f = case.world_surface(worst.time)
         tags = classify((v, f), grid)
-        env = swept_envelope(case.surfaces, case.motions, case.grid.finest_spacing)
+        env = report.figures.get("envelope", {})
         z = float(0.5 * (v[:, 2].min() + v[:, 2].max()))
         pad = 0.3 * case.chord
         zoom = ((v[:, 0].min() - pad, v[:, 1].min() - pad), (v[:, 0].max() + pad, v[:, 1].max() + pad))
         out.append(plot_tags_slice(tags, grid, z, folder / "tags.png", nested=case.grid,
-                                   envelope=(env.lower, env.upper), bad_points=worst.bad_points,
+                                   envelope=(env["lower_m"], env["upper_m"]) if env else None,
+                                   bad_points=worst.bad_points,
                                    title=f"worst checked step t = {worst.time:.4g} s", zoom=zoom))
     return out
 

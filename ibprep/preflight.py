@@ -364,15 +364,10 @@ def check_instants(case: Case, *, all_steps: bool | None = None) -> np.ndarray:
     if all_steps:
         return np.arange(case.steps_per_cycle) * dt
     base = np.arange(case.checks.phases) * T / case.checks.phases
-    from scipy.spatial import ConvexHull, QhullError
 
     peaks = []
     for body in case.bodies:
-        v = np.asarray(body.surface.vertices)
-        try:
-            hull = v[ConvexHull(v).vertices]
-        except (QhullError, ValueError):
-            hull = v
+        hull = _hull(np.asarray(body.surface.vertices))
         peaks.append(np.asarray(body.motion.peak_speed_times(hull), dtype=float).ravel())
     peaks = np.concatenate(peaks)
     # Align peaks to solver steps so every checked pair is a real pair of steps.
@@ -413,8 +408,10 @@ def preflight(case: Case, *, all_steps: bool | None = None, workers: int = 1, sc
     level = _body_level(case, env)
     grid = case.grid.levels[level]
     h = grid.spacing
-    v = np.asarray(case.surface.vertices)
-    nums = flow_numbers(motion, c, case.flow.speed, case.flow.viscosity, te_point=case.te_point, surface_points=v)
+    # A rigid body's point speed |v0 + w x r| is convex in r, so its maximum over the body
+    # is reached at a vertex of the convex hull: the hull points give the exact peak.
+    hull = _hull(np.asarray(case.surface.vertices))
+    nums = flow_numbers(motion, c, case.flow.speed, case.flow.viscosity, te_point=case.te_point, surface_points=hull)
     figures["numbers"] = {
         "reynolds": nums.reynolds, "frequency_ratio_fc_U": nums.frequency_ratio, "k_chord": nums.k_chord,
         "k_half_chord": nums.k_half_chord, "plunge_ratio_h0_c": nums.plunge_ratio, "kh": nums.kh,
@@ -517,6 +514,16 @@ def _stencil_checks(steps, limits: StencilLimits, figures: dict, h: float) -> li
         out.append(Check("stencil.fresh", "pass", 0.0, 0, "cells",
                          f"all {n_fresh} fresh cells over the checked steps have ok stencils"))
     return out
+
+
+def _hull(points: np.ndarray) -> np.ndarray:
+    """Vertices of the convex hull of (n, 3) points (all of them if the hull is degenerate)."""
+    from scipy.spatial import ConvexHull, QhullError
+
+    try:
+        return points[ConvexHull(points).vertices]
+    except (QhullError, ValueError):
+        return points
 
 
 def _demanding_lengths(case: Case):

@@ -424,10 +424,24 @@ def load_stencils(path) -> Stencils:
 def _basis(xi: np.ndarray, planar: bool) -> np.ndarray:
     """Quadratic monomials of scaled local coordinates: (..., 6) or (..., 10)."""
     x, y = xi[..., 0], xi[..., 1]
+    out = np.empty(xi.shape[:-1] + ((6,) if planar else (10,)))
+    out[..., 0] = 1.0
+    out[..., 1] = x
+    out[..., 2] = y
     if planar:
-        return np.stack([np.ones_like(x), x, y, x * x, x * y, y * y], axis=-1)
+        np.multiply(x, x, out=out[..., 3])
+        np.multiply(x, y, out=out[..., 4])
+        np.multiply(y, y, out=out[..., 5])
+        return out
     z = xi[..., 2]
-    return np.stack([np.ones_like(x), x, y, z, x * x, y * y, z * z, x * y, y * z, z * x], axis=-1)
+    out[..., 3] = z
+    np.multiply(x, x, out=out[..., 4])
+    np.multiply(y, y, out=out[..., 5])
+    np.multiply(z, z, out=out[..., 6])
+    np.multiply(x, y, out=out[..., 7])
+    np.multiply(y, z, out=out[..., 8])
+    np.multiply(z, x, out=out[..., 9])
+    return out
 
 
 def _basis_normal_derivative(xi: np.ndarray, n: np.ndarray, planar: bool) -> np.ndarray:
