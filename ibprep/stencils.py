@@ -422,26 +422,30 @@ def load_stencils(path) -> Stencils:
 
 # ---------------------------------------------------------------------- fit
 def _basis(xi: np.ndarray, planar: bool) -> np.ndarray:
-    """Quadratic monomials of scaled local coordinates: (..., 6) or (..., 10)."""
+    """Quadratic monomials of scaled local coordinates: (..., 6) or (..., 10).
+
+    Built monomial-first (contiguous writes) and returned as a view with the monomial
+    axis last.
+    """
     x, y = xi[..., 0], xi[..., 1]
-    out = np.empty(xi.shape[:-1] + ((6,) if planar else (10,)))
-    out[..., 0] = 1.0
-    out[..., 1] = x
-    out[..., 2] = y
+    out = np.empty(((6,) if planar else (10,)) + xi.shape[:-1])
+    out[0] = 1.0
+    out[1] = x
+    out[2] = y
     if planar:
-        np.multiply(x, x, out=out[..., 3])
-        np.multiply(x, y, out=out[..., 4])
-        np.multiply(y, y, out=out[..., 5])
-        return out
-    z = xi[..., 2]
-    out[..., 3] = z
-    np.multiply(x, x, out=out[..., 4])
-    np.multiply(y, y, out=out[..., 5])
-    np.multiply(z, z, out=out[..., 6])
-    np.multiply(x, y, out=out[..., 7])
-    np.multiply(y, z, out=out[..., 8])
-    np.multiply(z, x, out=out[..., 9])
-    return out
+        np.multiply(x, x, out=out[3])
+        np.multiply(x, y, out=out[4])
+        np.multiply(y, y, out=out[5])
+    else:
+        z = xi[..., 2]
+        out[3] = z
+        np.multiply(x, x, out=out[4])
+        np.multiply(y, y, out=out[5])
+        np.multiply(z, z, out=out[6])
+        np.multiply(x, y, out=out[7])
+        np.multiply(y, z, out=out[8])
+        np.multiply(z, x, out=out[9])
+    return np.moveaxis(out, 0, -1)
 
 
 def _basis_normal_derivative(xi: np.ndarray, n: np.ndarray, planar: bool) -> np.ndarray:
@@ -687,8 +691,14 @@ def build_stencils(
         check_orientation=oriented,
     )
 
+    plane = int(shape3[1] * shape3[2])
+
     def centres_of(flat):
-        ijk = np.stack(np.unravel_index(flat, tuple(shape3)), axis=-1)
+        # C-order unravel by integer arithmetic (cheaper than unravel_index + stack).
+        flat = np.asarray(flat, dtype=np.int64)
+        ijk = np.empty(flat.shape + (3,), dtype=np.int64)
+        ijk[..., 0], rem = np.divmod(flat, plane)
+        ijk[..., 1], ijk[..., 2] = np.divmod(rem, shape3[2])
         return lower3 + (ijk + 0.5) * h, ijk
 
     x0, ijk0 = centres_of(cells)
@@ -753,14 +763,24 @@ def build_stencils(
             v = vis[done]
             cf = cflat[done]
             # Nearest first from the fitting point; keep at most kmax.
-            xc, _ = centres_of(cf.reshape(-1))
-            d2 = ((xc.reshape(cf.shape + (3,)) - centre[rows, None, :]) ** 2).sum(axis=2)
-            d2 = np.where(v, d2, np.inf)
-            order = np.argsort(d2, axis=1, kind="stable")[:, :kmax]
-            take = np.take_along_axis(v, order, axis=1)
-            ids = np.where(take, np.take_along_axis(cf, order, axis=1), -1)
-            nb[rows, : ids.shape[1]] = ids
-            nvis[rows] = take.sum(axis=1)
+            if method == "image-point":
+                xc, _ = centres_of(cf.reshape(-1))
+                d2 = ((xc.reshape(cf.shape + (3,)) - centre[rows, None, :]) ** 2).sum(axis=2)
+                d2 = np.where(v, d2, np.inf)
+                order = np.argsort(d2, axis=1, kind="stable")[:, :kmax]
+                take = np.take_along_axis(v, order, axis=1)
+                ids = np.where(take, np.take_along_axis(cf, order, axis=1), -1)
+                nb[rows, : ids.shape[1]] = ids
+                nvis[rows] = take.sum(axis=1)
+            else:
+                # The fitting point is the anchor cell's centre and the offsets are sorted by
+                # length, so the visible candidates in column order are already nearest first
+                # (ties in the same order a stable sort by distance gives).
+                slot = np.cumsum(v, axis=1) - 1
+                keep = v & (slot < kmax)
+                r_idx = np.broadcast_to(rows[:, None], v.shape)[keep]
+                nb[r_idx, slot[keep]] = cf[keep]
+                nvis[rows] = np.minimum(v.sum(axis=1), kmax)
             used_radius[rows] = r
         active = active[~done]
         prev_vis = vis[~done]
@@ -783,7 +803,7 @@ def build_stencils(
     w = np.where(pad, 0.0, _weight(rho, support[:, None], weight))
     wb = _weight(np.linalg.norm(xb, axis=1), support, weight)
     A = np.empty((n, k + 1, m))
-    A[:, :k] = _basis(xi, planar) * (~pad)[:, :, None]
+    np.multiply(_basis(xi, planar), (~pad)[:, :, None], out=A[:, :k])
     if bc == "dirichlet":
         A[:, k] = _basis(xb, planar)
     else:
