@@ -310,8 +310,12 @@ def _run_export(args) -> int:
 
 # --------------------------------------------------------------------------- demo
 def _demo_add_args(p):
+    import os
+
     p.add_argument("--out", default="ibprep-demo", metavar="DIR", help="folder for the demo's files (default: %(default)s)")
     _engine_args(p)
+    # The demo is a real case (about 2e7 cells at the finest level): use two cores where there are two.
+    p.set_defaults(workers=min(2, os.cpu_count() or 1))
 
 
 def _run_demo(args) -> int:
