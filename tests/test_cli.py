@@ -124,3 +124,36 @@ def test_subprocess_smoke(tmp_path):
                        env=env, timeout=120)
     assert r.returncode == 2
     assert "[motion] frequency must be > 0" in r.stderr and "Traceback" not in r.stderr
+
+
+def test_two_dimensional_case_plots_and_exports(tmp_path, capsys):
+    import meshio
+    import numpy as np
+
+    from cases import SMALL_CASE_2D
+
+    case = _case(tmp_path, SMALL_CASE_2D)
+    assert main(["check", str(case), "--plots", str(tmp_path / "plots"), "--no-progress"]) == 0
+    for png in ("motion.png", "steps.png", "tags.png"):
+        assert (tmp_path / "plots" / png).read_bytes()[:4] == b"\x89PNG"
+    out = tmp_path / "exp"
+    assert main(["export", str(case), "--out", str(out), "--count", "2", "--what", "tags,stencils"]) == 0
+    m = meshio.read(out / "tags_step0000.vtu")
+    # One layer of hexahedra in the plane: every cell's z extent is one spacing around z = 0.
+    z = m.points[:, 2]
+    assert np.isclose(z.min(), -z.max()) and set(np.unique(m.cell_data["tag"][0])) <= {1, 2}
+    assert main(["export", str(case), "--out", str(out), "--what", "markers"]) == 2
+    assert "markers are for 3-D bodies" in capsys.readouterr().err
+
+
+def test_tandem_case_exports_one_marker_file_per_body(tmp_path, capsys):
+    from cases import TANDEM_CASE
+
+    case = _case(tmp_path, TANDEM_CASE)
+    out = tmp_path / "exp"
+    assert main(["export", str(case), "--out", str(out), "--count", "1", "--what", "stl,markers"]) == 0
+    assert (out / "markers_body_frame_fore.csv").exists() and (out / "markers_body_frame_aft.csv").exists()
+    from ibprep import check_surface, load_surface
+
+    both = load_surface(out / "body_step0000.stl")
+    assert check_surface(both).n_bodies == 2 and check_surface(both).ok
