@@ -7,14 +7,13 @@ matplotlib and meshio are imported inside the functions that need them.
 
 from __future__ import annotations
 
-import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
 
 from .classify import CellTag
 from .errors import InputError
+from .files import atomic_write
 
 __all__ = [
     "atomic_write",
@@ -26,45 +25,6 @@ __all__ = [
     "write_time_series",
     "write_markers_csv",
 ]
-
-
-def atomic_write(path, write) -> Path:
-    """Write a file through ``write(tmp_path)`` into a temporary sibling, then rename it over ``path``.
-
-    Parameters
-    ----------
-    path : str or Path — the destination.
-    write : callable — called with the temporary path (str); must create that file.
-
-    Returns
-    -------
-    Path — the destination.
-
-    Raises
-    ------
-    InputError
-        The folder does not exist or cannot be written. Whatever ``write`` raises
-        is re-raised after the temporary file is removed; ``path`` is untouched.
-    """
-    path = Path(path)
-    folder = path.parent if str(path.parent) else Path(".")
-    if not folder.is_dir():
-        raise InputError(f"cannot write {str(path)!r}: folder {str(folder)!r} does not exist")
-    try:
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part" + path.suffix, dir=folder)
-    except OSError as exc:
-        raise InputError(f"cannot write in folder {str(folder)!r}: {exc.strerror}") from None
-    os.close(fd)
-    try:
-        write(tmp)
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
-    return path
 
 
 def write_json_report(report, path) -> Path:

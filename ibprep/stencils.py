@@ -76,13 +76,14 @@ from __future__ import annotations
 
 import math
 import os
-import tempfile
 from dataclasses import dataclass
+from pathlib import Path
 
 import numpy as np
 
 from .classify import CellTag
 from .errors import InputError
+from .files import atomic_write
 from .grid import Grid
 from .kernels import closest as _closest, segments_cross_fan as _segments_cross_fan, wls_value_weights as _wls_kernel
 from .proximity import TriangleIndex
@@ -352,35 +353,34 @@ class Stencils:
         return (self.weights * vals).sum(axis=1) + self.boundary_weight * np.asarray(g, dtype=float)
 
     # ------------------------------------------------------------- save/load
-    def save(self, path) -> None:
+    def save(self, path) -> Path:
         """Write the table to an NPZ file atomically (temp file in the same folder, then rename).
 
         Parameters
         ----------
         path : str or os.PathLike — destination ``.npz`` file; an existing file
             is replaced only once the new one is complete.
+
+        Returns
+        -------
+        Path — the file written.
         """
-        path = os.fspath(path)
-        folder = os.path.dirname(os.path.abspath(path))
-        fd, tmp = tempfile.mkstemp(prefix=".stencils-", suffix=".npz", dir=folder)
-        try:
-            with os.fdopen(fd, "wb") as fh:
-                np.savez(
-                    fh,
-                    **{name: getattr(self, name) for name in _ARRAY_FIELDS},
-                    bc=np.array(self.bc),
-                    interface=np.array(self.interface),
-                    method=np.array(self.method),
-                    grid_lower=np.asarray(self.grid_lower, dtype=float),
-                    grid_shape=np.asarray(self.grid_shape, dtype=np.int64),
-                    spacing=np.array(self.spacing),
-                    format_version=np.array(1),
-                )
-            os.replace(tmp, path)
-        except BaseException:
-            if os.path.exists(tmp):
-                os.unlink(tmp)
-            raise
+        arrays = dict(
+            **{name: getattr(self, name) for name in _ARRAY_FIELDS},
+            bc=np.array(self.bc),
+            interface=np.array(self.interface),
+            method=np.array(self.method),
+            grid_lower=np.asarray(self.grid_lower, dtype=float),
+            grid_shape=np.asarray(self.grid_shape, dtype=np.int64),
+            spacing=np.array(self.spacing),
+            format_version=np.array(1),
+        )
+
+        def _write(tmp):
+            with open(tmp, "wb") as fh:
+                np.savez(fh, **arrays)
+
+        return atomic_write(path, _write)
 
 
 def load_stencils(path) -> Stencils:

@@ -24,8 +24,6 @@ an inverted body.
 from __future__ import annotations
 
 import math
-import os
-import tempfile
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
@@ -33,6 +31,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import IbprepWarning, InputError
+from ..files import atomic_write
 
 __all__ = [
     "SurfaceReport",
@@ -500,19 +499,8 @@ def save_surface(mesh, path, *, ascii: bool = False) -> Path:
         raise InputError(f"cannot save {str(p)!r}: directory {str(directory)!r} does not exist; create it first")
     if not hasattr(mesh, "faces"):
         mesh = mesh_from_arrays(*_arrays(mesh))
-    fd, tmp = tempfile.mkstemp(prefix=f".{p.name}.", suffix=".tmp", dir=directory)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(_stl_payload(mesh, ascii))
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, p)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
+    payload = _stl_payload(mesh, ascii)
+    atomic_write(p, lambda tmp: Path(tmp).write_bytes(payload))
     return p
 
 
