@@ -247,7 +247,7 @@ def _run_export(args) -> int:
     import numpy as np
 
     from .case import load_case
-    from .classify import classify
+    from .classify import classify, label_bodies
     from .export import write_markers_csv, write_tags_vtu, write_time_series
     from .geometry import save_surface, surface_markers
     from .geometry.surface import mesh_from_arrays
@@ -290,9 +290,12 @@ def _run_export(args) -> int:
                 okf.reshape(-1)[st.cells] = st.ok
                 data = {"condition": cond, "stencil_ok": okf}
             else:
-                data = None
+                data = {}
+            if len(case.bodies) > 1:
+                # Which body each solid cell belongs to (0: none), numbered by surface component.
+                data["body"] = label_bodies((v, faces), grid)[0]
             if "tags" in what:
-                f = write_tags_vtu(tags, grid, out / f"tags_{stem}.vtu", region=region, cell_data=data)
+                f = write_tags_vtu(tags, grid, out / f"tags_{stem}.vtu", region=region, cell_data=data or None)
                 written.append(f)
                 series.append((float(t), f))
         if "markers" in what and i == 0:

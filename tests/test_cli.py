@@ -151,8 +151,16 @@ def test_tandem_case_exports_one_marker_file_per_body(tmp_path, capsys):
 
     case = _case(tmp_path, TANDEM_CASE)
     out = tmp_path / "exp"
-    assert main(["export", str(case), "--out", str(out), "--count", "1", "--what", "stl,markers"]) == 0
+    assert main(["export", str(case), "--out", str(out), "--count", "1", "--what", "stl,markers,tags"]) == 0
     assert (out / "markers_body_frame_fore.csv").exists() and (out / "markers_body_frame_aft.csv").exists()
+    import meshio
+    import numpy as np
+
+    m = meshio.read(out / "tags_step0000.vtu")
+    body = m.cell_data["body"][0]
+    tag = m.cell_data["tag"][0]
+    # Solid cells carry the number of the body that holds them; both bodies appear.
+    assert set(np.unique(body[tag == 1])) == {1.0, 2.0}
     from ibprep import check_surface, load_surface
 
     both = load_surface(out / "body_step0000.stl")
