@@ -170,13 +170,13 @@ def _surface_checks(case: Case, h_body: float, figures: dict) -> list[Check]:
         figures["surface"].append(fig)
     if len(per_body) == 1:
         return per_body[0]
+    ids = list(dict.fromkeys(c.id for checks in per_body for c in checks))  # first-seen order
     merged = []
-    for i, first in enumerate(per_body[0]):
-        group = [checks[i] for checks in per_body if i < len(checks) and checks[i].id == first.id]
-        worst = max(group, key=lambda c: _RANK[c.status])
-        names = [b.name for b in case.bodies]
-        message = "; ".join(f"{n}: {c.message}" for n, c in zip(names, group))
-        merged.append(Check(first.id, worst.status, worst.value, worst.limit, worst.unit, message, worst.hint))
+    for id_ in ids:
+        group = [(b.name, c) for b, checks in zip(case.bodies, per_body) for c in checks if c.id == id_]
+        worst = max((c for _, c in group), key=lambda c: _RANK[c.status])
+        message = "; ".join(f"{name}: {c.message}" for name, c in group)
+        merged.append(Check(id_, worst.status, worst.value, worst.limit, worst.unit, message, worst.hint))
     return merged
 
 
