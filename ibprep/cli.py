@@ -154,27 +154,39 @@ def _folder(path) -> Path:
     return p
 
 
-def _write_plots(case, report, folder: Path) -> list[Path]:
-    from .classify import classify
+class _WorstStep:
+    """The worst checked step of a report, re-tagged once for the plots and the ParaView file.
+
+    Attributes: step (StepResult), grid (the level holding the body), vertices and faces
+    (world frame at that step), tags (grid.shape uint8).
+    """
+
+    def __init__(self, case, report):
+        from .classify import classify
+
+        self.step = max(report.steps, key=lambda s: (s.n_bad, s.worst_condition))
+        self.grid = case.grid.levels[report.figures["resolution"]["level_at_body"]]
+        self.vertices, self.faces = case.world_surface(self.step.time)
+        self.tags = classify((self.vertices, self.faces), self.grid)
+
+
+def _write_plots(case, report, folder: Path, worst: "_WorstStep | None" = None) -> list[Path]:
     from .export import plot_motion, plot_steps, plot_tags_slice
 
     out = [plot_motion(case.motion, case.chord, case.flow.speed, folder / "motion.png", title=case.title)]
     if report.steps:
         limit = next((c.limit for c in report.checks if c.id == "stencil.condition"), None)
         out.append(plot_steps(report.steps, case.motion.period, folder / "steps.png", condition_limit=limit))
-        worst = max(report.steps, key=lambda s: (s.n_bad, s.worst_condition))
-        level = report.figures["resolution"]["level_at_body"]
-        grid = case.grid.levels[level]
-        v, f = case.world_surface(worst.time)
-        tags = classify((v, f), grid)
+        worst = worst or _WorstStep(case, report)
+        v = worst.vertices
         env = report.figures.get("envelope", {})
         z = float(0.5 * (v[:, 2].min() + v[:, 2].max()))
         pad = 0.3 * case.chord
         zoom = ((v[:, 0].min() - pad, v[:, 1].min() - pad), (v[:, 0].max() + pad, v[:, 1].max() + pad))
-        out.append(plot_tags_slice(tags, grid, z, folder / "tags.png", nested=case.grid,
+        out.append(plot_tags_slice(worst.tags, worst.grid, z, folder / "tags.png", nested=case.grid,
                                    envelope=(env["lower_m"], env["upper_m"]) if env else None,
-                                   bad_points=worst.bad_points,
-                                   title=f"worst checked step t = {worst.time:.4g} s", zoom=zoom))
+                                   bad_points=worst.step.bad_points,
+                                   title=f"worst checked step t = {worst.step.time:.4g} s", zoom=zoom))
     return out
 
 
@@ -324,7 +336,8 @@ def _demo_add_args(p):
 def _run_demo(args) -> int:
     from .case import load_case
     from .demo import DEMO_CASE
-    from .export import atomic_write, write_json_report, write_tags_vtu
+    from .export import write_json_report, write_tags_vtu
+    from .files import atomic_write
     from .geometry import save_surface
     from .preflight import preflight
 
@@ -336,25 +349,20 @@ def _run_demo(args) -> int:
     args.all_steps = False
     report = _preflight(case, args, preflight)
     files = [case_path, write_json_report(report, out / "report.json")]
-    files += _write_plots(case, report, out)
+    worst = _WorstStep(case, report) if report.steps else None
+    files += _write_plots(case, report, out, worst)
     from .geometry.surface import mesh_from_arrays
 
     files.append(save_surface(mesh_from_arrays(*case.world_surface(0.0)), out / "body.stl"))
-    # The tags of the worst checked step near the body, for ParaView.
-    import numpy as np
-
-    from .classify import classify
-
-    worst = max(report.steps, key=lambda s: (s.n_bad, s.worst_condition)) if report.steps else None
     if worst is not None:
-        level = report.figures["resolution"]["level_at_body"]
-        grid = case.grid.levels[level]
-        v, f = case.world_surface(worst.time)
-        tags = classify((v, f), grid)
+        # The tags of the worst checked step near the body, for ParaView.
+        import numpy as np
+
         m = 0.1 * case.chord
         nd = case.ndim
-        region = grid.index_box(np.min(v, axis=0)[:nd] - m, np.max(v, axis=0)[:nd] + m)
-        files.append(write_tags_vtu(tags, grid, out / "tags_worst_step.vtu", region=region))
+        v = worst.vertices
+        region = worst.grid.index_box(np.min(v, axis=0)[:nd] - m, np.max(v, axis=0)[:nd] + m)
+        files.append(write_tags_vtu(worst.tags, worst.grid, out / "tags_worst_step.vtu", region=region))
     print(format_report(report))
     print("")
     print(f"files written into {out}:")

@@ -16,7 +16,6 @@ from .errors import InputError
 from .files import atomic_write
 
 __all__ = [
-    "atomic_write",
     "write_json_report",
     "plot_motion",
     "plot_steps",
@@ -208,8 +207,14 @@ def write_tags_vtu(tags, grid, path, *, region=None, cell_data=None) -> Path:
     h = grid.spacing
     lower = np.array([*grid.lower, *(() if grid.ndim == 3 else (-0.5 * h,))], dtype=float)
     corners = np.array([[0, 0, 0], [1, 0, 0], [1, 1, 0], [0, 1, 0], [0, 0, 1], [1, 0, 1], [1, 1, 1], [0, 1, 1]])
-    pts = (lower + (idx[:, None, :] + corners[None]) * h).reshape(-1, 3)
-    cells = np.arange(len(pts)).reshape(-1, 8)
+    # Corners are shared between neighbouring cells: number each lattice node once.
+    node = (idx[:, None, :] + corners[None]).reshape(-1, 3)
+    dims = np.asarray(shape3, dtype=np.int64) + 1
+    key = (node[:, 0] * dims[1] + node[:, 1]) * dims[2] + node[:, 2]
+    uniq, inverse = np.unique(key, return_inverse=True)
+    ijk = np.stack(np.unravel_index(uniq, tuple(dims)), axis=-1)
+    pts = lower + ijk * h
+    cells = inverse.reshape(-1, 8)
     data = {"tag": [t3[tuple(idx.T)].astype(np.int32)]}
     for name, arr in (cell_data or {}).items():
         a = np.asarray(arr).reshape(shape3)
