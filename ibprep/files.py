@@ -48,6 +48,9 @@ def atomic_write(path, write) -> Path:
         write(tmp)
         with open(tmp, "rb+") as fh:  # the content is on disk before the rename makes it visible
             os.fsync(fh.fileno())
+        # mkstemp makes the file private (0600); give it the mode a plain open() would have:
+        # the existing file's, or 0666 less the umask.
+        os.chmod(tmp, path.stat().st_mode & 0o7777 if path.exists() else 0o666 & ~_umask())
         os.replace(tmp, path)
     except BaseException:
         try:
@@ -56,3 +59,10 @@ def atomic_write(path, write) -> Path:
             pass
         raise
     return path
+
+
+def _umask() -> int:
+    """The process's file-creation mask (read by setting and restoring it)."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
