@@ -34,7 +34,7 @@ import numpy as np
 
 from .proximity import ClosestPoints
 
-__all__ = ["segments_cross_fan", "closest", "wls_value_weights"]
+__all__ = ["segments_cross_fan", "closest", "wls_value_weights", "stencil_fits"]
 
 _JIT = dict(cache=True, nogil=True, fastmath=False, error_model="numpy")
 
@@ -55,10 +55,10 @@ def _dot3(ax, ay, az, bx, by, bz):
 
 
 @numba.njit(**_JIT)
-def _segment_crosses(p0, p1, tri):
+def _segment_crosses(p0x, p0y, p0z, p1x, p1y, p1z, tri):
     """Möller–Trumbore on one segment and one (3, 3) triangle; proximity.segments_cross_triangles."""
     ax, ay, az = tri[0, 0], tri[0, 1], tri[0, 2]
-    dx, dy, dz = p1[0] - p0[0], p1[1] - p0[1], p1[2] - p0[2]
+    dx, dy, dz = p1x - p0x, p1y - p0y, p1z - p0z
     e1x, e1y, e1z = tri[1, 0] - ax, tri[1, 1] - ay, tri[1, 2] - az
     e2x, e2y, e2z = tri[2, 0] - ax, tri[2, 1] - ay, tri[2, 2] - az
     pvx = dy * e2z - dz * e2y
@@ -72,7 +72,7 @@ def _segment_crosses(p0, p1, tri):
     if not (abs(det) > 1e-14 * scale):
         return False
     inv = 1.0 / det
-    tx, ty, tz = p0[0] - ax, p0[1] - ay, p0[2] - az
+    tx, ty, tz = p0x - ax, p0y - ay, p0z - az
     u = _dot3(tx, ty, tz, pvx, pvy, pvz) * inv
     qx = ty * e1z - tz * e1y
     qy = tz * e1x - tx * e1z
@@ -144,124 +144,131 @@ def _closest_on_triangle(px, py, pz, tri, out):
 
 # --------------------------------------------------------- fan crossings
 @numba.njit(**_JIT)
+def _fan_row(ox, oy, oz, ex, ey, ez, nc, hit, reach, grid_origin, s, dims, cstart, ccount, citems, pcentre,
+             pradius, pparent, tri, fnormal, rmax, lo, hi, l_face, l_cx, l_cy, l_cz, l_box, l_so, l_cc, l_r2,
+             c_mx, c_my, c_mz, c_ok):
+    """Crossings of the nc segments from (ox, oy, oz) to (ex[j], ey[j], ez[j]): hit[j] set true.
+
+    One row of segments_cross_fan; hit[:nc] must come in false. reach bounds the
+    segments' lengths; the l_* and c_* arrays are scratch.
+    """
+    breach = reach + rmax  # near_pairs: bucket range grown by the largest piece radius
+    o3 = (ox, oy, oz)
+    for k in range(3):
+        pk = o3[k]
+        if (pk + breach < grid_origin[k]) or (pk - breach > grid_origin[k] + dims[k] * s):
+            return
+        lo[k] = min(max(np.int64(math.floor(((pk - breach) - grid_origin[k]) / s)), 0), dims[k] - 1)
+        hi[k] = min(max(np.int64(math.floor(((pk + breach) - grid_origin[k]) / s)), 0), dims[k] - 1)
+    # Gather: the ball screen of near_pairs, and per piece the quantities of its plane.
+    m = 0
+    for bx in range(lo[0], hi[0] + 1):
+        for by in range(lo[1], hi[1] + 1):
+            for bz in range(lo[2], hi[2] + 1):
+                flat = (bx * dims[1] + by) * dims[2] + bz
+                for pos in range(cstart[flat], cstart[flat] + ccount[flat]):
+                    t = citems[pos]
+                    dcx, dcy, dcz = ox - pcentre[t, 0], oy - pcentre[t, 1], oz - pcentre[t, 2]
+                    rr = reach + pradius[t]
+                    if not (_dot3(dcx, dcy, dcz, dcx, dcy, dcz) <= rr * rr):
+                        continue
+                    f = pparent[t]
+                    l_face[m] = f
+                    l_so[m] = _dot3(ox - tri[f, 0, 0], oy - tri[f, 0, 1], oz - tri[f, 0, 2],
+                                    fnormal[f, 0], fnormal[f, 1], fnormal[f, 2])
+                    cx = pcentre[t, 0] - ox
+                    cy = pcentre[t, 1] - oy
+                    cz = pcentre[t, 2] - oz
+                    l_cx[m] = cx
+                    l_cy[m] = cy
+                    l_cz[m] = cz
+                    l_cc[m] = _dot3(cx, cy, cz, cx, cy, cz)
+                    l_r2[m] = pradius[t] * pradius[t] * (1 + 1e-9)
+                    # Half-width of the box prefilter: the radius plus a margin far above the
+                    # round-off of the sphere screen below (~1e-8 (reach + radius)).
+                    l_box[m] = pradius[t] + 1e-6 * (pradius[t] + reach)
+                    m += 1
+    if m == 0:
+        return
+    # The segments as contiguous centre/half-extent arrays of their boxes.
+    for jj in range(nc):
+        c_mx[jj] = 0.5 * (ex[jj] - ox)
+        c_my[jj] = 0.5 * (ey[jj] - oy)
+        c_mz[jj] = 0.5 * (ez[jj] - oz)
+    for i in range(m):
+        w = l_box[i]
+        px, py, pz = l_cx[i], l_cy[i], l_cz[i]
+        # Conservative prefilter (not in the numpy path): the point of the segment the
+        # sphere screen accepts lies in the segment's box, so the piece's sphere (grown
+        # by the margin) must meet that box. Branch-free over the segments.
+        for jj in range(nc):
+            mx, my, mz = c_mx[jj], c_my[jj], c_mz[jj]
+            c_ok[jj] = (abs(px - mx) <= w + abs(mx)) & (abs(py - my) <= w + abs(my)) & (abs(pz - mz) <= w + abs(mz))
+        for jj in range(nc):
+            if not c_ok[jj] or hit[jj]:
+                continue
+            dx, dy, dz = ex[jj] - ox, ey[jj] - oy, ez[jj] - oz
+            dd = _dot3(dx, dy, dz, dx, dy, dz)
+            f = l_face[i]
+            s_o = l_so[i]
+            s_j = dx * fnormal[f, 0]
+            s_j += dy * fnormal[f, 1]
+            s_j += dz * fnormal[f, 2]
+            s_j += s_o
+            # Plane-side screen: the segment reaches the plane within [0, 1].
+            tau = s_o / (s_o - s_j)
+            if not ((tau >= 0.0) and (tau <= 1.0)):
+                continue
+            dot = dx * l_cx[i]
+            dot += dy * l_cy[i]
+            dot += dz * l_cz[i]
+            q = tau * dd
+            q -= 2.0 * dot
+            q *= tau
+            q += l_cc[i]
+            if not (q <= l_r2[i]):
+                continue
+            if _segment_crosses(ox, oy, oz, ex[jj], ey[jj], ez[jj], tri[f]):
+                hit[jj] = True
+
+
+@numba.njit(**_JIT)
+def _fan_scratch(cap, c):
+    """Scratch arrays of _fan_row for up to cap gathered pieces and c segments."""
+    return (np.empty(3, dtype=np.int64), np.empty(3, dtype=np.int64), np.empty(cap, dtype=np.int64),
+            np.empty(cap), np.empty(cap), np.empty(cap), np.empty(cap), np.empty(cap), np.empty(cap),
+            np.empty(cap), np.empty(c), np.empty(c), np.empty(c), np.empty(c, dtype=np.bool_))
+
+
+@numba.njit(**_JIT)
 def _fan_kernel(o, e, valid, reach, grid_origin, s, dims, cstart, ccount, citems, pcentre, pradius, pparent,
                 tri, fnormal, rmax):
     n, c = valid.shape
     hit = np.zeros((n, c), dtype=np.bool_)
-    breach = reach + rmax  # near_pairs: bucket range grown by the largest piece radius
-    lo = np.empty(3, dtype=np.int64)
-    hi = np.empty(3, dtype=np.int64)
-    # Per-row list of the pieces near the origin (each piece at most once: centre buckets).
-    cap = citems.shape[0]
-    l_face = np.empty(cap, dtype=np.int64)
-    l_cx = np.empty(cap)
-    l_cy = np.empty(cap)
-    l_cz = np.empty(cap)
-    l_box = np.empty(cap)
-    l_so = np.empty(cap)
-    l_cc = np.empty(cap)
-    l_r2 = np.empty(cap)
+    lo, hi, l_face, l_cx, l_cy, l_cz, l_box, l_so, l_cc, l_r2, c_mx, c_my, c_mz, c_ok = _fan_scratch(
+        citems.shape[0], c)
     c_j = np.empty(c, dtype=np.int64)
-    c_mx = np.empty(c)
-    c_my = np.empty(c)
-    c_mz = np.empty(c)
-    c_ok = np.empty(c, dtype=np.bool_)
+    ex = np.empty(c)
+    ey = np.empty(c)
+    ez = np.empty(c)
+    h_row = np.zeros(c, dtype=np.bool_)
     for r in range(n):
-        nvalid = 0
-        for j in range(c):
-            if valid[r, j]:
-                nvalid += 1
-        if nvalid == 0:
-            continue
-        ox, oy, oz = o[r, 0], o[r, 1], o[r, 2]
-        far = False
-        for k in range(3):
-            pk = o[r, k]
-            if (pk + breach < grid_origin[k]) or (pk - breach > grid_origin[k] + dims[k] * s):
-                far = True
-            lo[k] = min(max(np.int64(math.floor(((pk - breach) - grid_origin[k]) / s)), 0), dims[k] - 1)
-            hi[k] = min(max(np.int64(math.floor(((pk + breach) - grid_origin[k]) / s)), 0), dims[k] - 1)
-        if far:
-            continue
-        # Gather: the ball screen of near_pairs, and per piece the quantities of its plane.
-        m = 0
-        for bx in range(lo[0], hi[0] + 1):
-            for by in range(lo[1], hi[1] + 1):
-                for bz in range(lo[2], hi[2] + 1):
-                    flat = (bx * dims[1] + by) * dims[2] + bz
-                    for pos in range(cstart[flat], cstart[flat] + ccount[flat]):
-                        t = citems[pos]
-                        dcx, dcy, dcz = ox - pcentre[t, 0], oy - pcentre[t, 1], oz - pcentre[t, 2]
-                        rr = reach + pradius[t]
-                        if not (_dot3(dcx, dcy, dcz, dcx, dcy, dcz) <= rr * rr):
-                            continue
-                        f = pparent[t]
-                        l_face[m] = f
-                        l_so[m] = _dot3(ox - tri[f, 0, 0], oy - tri[f, 0, 1], oz - tri[f, 0, 2],
-                                        fnormal[f, 0], fnormal[f, 1], fnormal[f, 2])
-                        cx = pcentre[t, 0] - ox
-                        cy = pcentre[t, 1] - oy
-                        cz = pcentre[t, 2] - oz
-                        l_cx[m] = cx
-                        l_cy[m] = cy
-                        l_cz[m] = cz
-                        l_cc[m] = _dot3(cx, cy, cz, cx, cy, cz)
-                        l_r2[m] = pradius[t] * pradius[t] * (1 + 1e-9)
-                        # Half-width of the box prefilter: the radius plus a margin far above the
-                        # round-off of the sphere screen below (~1e-8 (reach + radius)).
-                        l_box[m] = pradius[t] + 1e-6 * (pradius[t] + reach)
-                        m += 1
-        if m == 0:
-            continue
-        # Columns of the row as contiguous centre/half-extent arrays of their boxes.
         nc = 0
         for j in range(c):
-            if not valid[r, j]:
-                continue
-            dx, dy, dz = e[r, j, 0] - ox, e[r, j, 1] - oy, e[r, j, 2] - oz
-            c_j[nc] = j
-            c_mx[nc] = 0.5 * dx
-            c_my[nc] = 0.5 * dy
-            c_mz[nc] = 0.5 * dz
-            nc += 1
-        for i in range(m):
-            w = l_box[i]
-            px, py, pz = l_cx[i], l_cy[i], l_cz[i]
-            # Conservative prefilter (not in the numpy path): the point of the segment the
-            # sphere screen accepts lies in the segment's box, so the piece's sphere (grown
-            # by the margin) must meet that box. Branch-free over the columns.
-            for jj in range(nc):
-                mx, my, mz = c_mx[jj], c_my[jj], c_mz[jj]
-                c_ok[jj] = (abs(px - mx) <= w + abs(mx)) & (abs(py - my) <= w + abs(my)) & (abs(pz - mz) <= w + abs(mz))
-            for jj in range(nc):
-                if not c_ok[jj]:
-                    continue
-                j = c_j[jj]
-                if hit[r, j]:
-                    continue
-                dx, dy, dz = e[r, j, 0] - ox, e[r, j, 1] - oy, e[r, j, 2] - oz
-                dd = _dot3(dx, dy, dz, dx, dy, dz)
-                f = l_face[i]
-                s_o = l_so[i]
-                s_j = dx * fnormal[f, 0]
-                s_j += dy * fnormal[f, 1]
-                s_j += dz * fnormal[f, 2]
-                s_j += s_o
-                # Plane-side screen: the segment reaches the plane within [0, 1].
-                tau = s_o / (s_o - s_j)
-                if not ((tau >= 0.0) and (tau <= 1.0)):
-                    continue
-                dot = dx * l_cx[i]
-                dot += dy * l_cy[i]
-                dot += dz * l_cz[i]
-                q = tau * dd
-                q -= 2.0 * dot
-                q *= tau
-                q += l_cc[i]
-                if not (q <= l_r2[i]):
-                    continue
-                if _segment_crosses(o[r], e[r, j], tri[f]):
-                    hit[r, j] = True
+            if valid[r, j]:
+                c_j[nc] = j
+                ex[nc] = e[r, j, 0]
+                ey[nc] = e[r, j, 1]
+                ez[nc] = e[r, j, 2]
+                h_row[nc] = False
+                nc += 1
+        if nc == 0:
+            continue
+        _fan_row(o[r, 0], o[r, 1], o[r, 2], ex, ey, ez, nc, h_row, reach, grid_origin, s, dims, cstart, ccount,
+                 citems, pcentre, pradius, pparent, tri, fnormal, rmax, lo, hi, l_face, l_cx, l_cy, l_cz, l_box,
+                 l_so, l_cc, l_r2, c_mx, c_my, c_mz, c_ok)
+        for jj in range(nc):
+            hit[r, c_j[jj]] = h_row[jj]
     return hit
 
 
@@ -536,12 +543,17 @@ def _extreme_eigvals(G, d, e2, v, p_):  # e2: sub-diagonal work array
             vv += v[j] * v[j]
         beta = 2.0 / vv
         # p = beta G v, w = p - (beta / 2)(p . v) v, G <- G - v w^T - w v^T on the trailing block.
+        # G v accumulated column by column (G is symmetric: row j read for column j), so each
+        # sum keeps its order and the inner loop vectorises.
+        for i in range(k + 1, m):
+            p_[i] = 0.0
+        for j in range(k + 1, m):
+            vj = v[j]
+            for i in range(k + 1, m):
+                p_[i] += G[j, i] * vj
         pv = 0.0
         for i in range(k + 1, m):
-            s = 0.0
-            for j in range(k + 1, m):
-                s += G[i, j] * v[j]
-            p_[i] = beta * s
+            p_[i] = beta * p_[i]
             pv += p_[i] * v[i]
         half = 0.5 * beta * pv
         for i in range(k + 1, m):
@@ -564,19 +576,91 @@ def _extreme_eigvals(G, d, e2, v, p_):  # e2: sub-diagonal work array
 
 
 @numba.njit(**_JIT)
+def _wls_scratch(r, m):
+    """Scratch of _wls_solve for up to r rows and m unknowns: Bt, V, beta, G, d, e2, v, p_, y."""
+    return (np.empty((m, r)), np.empty((m, r)), np.empty(m), np.empty((m, m)), np.empty(m), np.empty(m),
+            np.empty(m), np.empty(m), np.empty(r))
+
+
+@numba.njit(**_JIT)
+def _wls_solve(Bt, nk, m, V, beta, G, d, e2, v, p_, y):
+    """Condition and value weights of one weighted design matrix, given transposed.
+
+    Bt[k, j] (k < m, j < nk) is column k of diag(sw) A, rows of zero weight left
+    out; it is overwritten. Householder QR (Golub & Van Loan §5.2.1), Bt -> R^T.
+    Returns the condition number (inf if rank deficient, y then undefined) and
+    leaves in y[:nk] the vector z with c_0 = z . (sw f).
+    """
+    for k in range(m):
+        nrm2 = 0.0
+        for j in range(k, nk):
+            nrm2 += Bt[k, j] * Bt[k, j]
+        nrm = math.sqrt(nrm2)
+        if nrm == 0.0:
+            beta[k] = 0.0
+            continue
+        alpha = -nrm if Bt[k, k] >= 0.0 else nrm
+        for j in range(k, nk):
+            V[k, j] = Bt[k, j]
+        V[k, k] -= alpha
+        vv = 0.0
+        for j in range(k, nk):
+            vv += V[k, j] * V[k, j]
+        bk = 2.0 / vv
+        beta[k] = bk
+        Bt[k, k] = alpha
+        for j in range(k + 1, nk):
+            Bt[k, j] = 0.0
+        for col in range(k + 1, m):
+            sdot = 0.0
+            for j in range(k, nk):
+                sdot += V[k, j] * Bt[col, j]
+            sdot *= bk
+            for j in range(k, nk):
+                Bt[col, j] -= sdot * V[k, j]
+    # Condition from the eigenvalues of R^T R, as the numpy path.
+    for p in range(m):
+        for q in range(p, m):
+            sg = 0.0
+            for k in range(p + 1):
+                sg += Bt[p, k] * Bt[q, k]
+            G[p, q] = sg
+            G[q, p] = sg
+    lmin, lmax = _extreme_eigvals(G, d, e2, v, p_)
+    dmin = np.inf
+    dmax = 0.0
+    for k in range(m):
+        rkk = abs(Bt[k, k])
+        dmin = min(dmin, rkk)
+        dmax = max(dmax, rkk)
+    if not (lmin > _GRAM_RTOL * lmax) or not (dmin > _RANK_RTOL * dmax):
+        return np.inf  # rank deficient
+    # z = Q y with R^T y = e_0: forward substitution, then the reflectors in reverse.
+    for k in range(nk):
+        y[k] = 0.0
+    for k in range(m):
+        sy = 1.0 if k == 0 else 0.0
+        for j in range(k):
+            sy -= Bt[k, j] * y[j]
+        y[k] = sy / Bt[k, k]
+    for k in range(m - 1, -1, -1):
+        if beta[k] == 0.0:
+            continue
+        sdot = 0.0
+        for j in range(k, nk):
+            sdot += V[k, j] * y[j]
+        sdot *= beta[k]
+        for j in range(k, nk):
+            y[j] -= sdot * V[k, j]
+    return math.sqrt(lmax / lmin)
+
+
+@numba.njit(**_JIT)
 def _wls_kernel(A, sw):
     n, r, m = A.shape
     a = np.zeros((n, r))
     cond = np.full(n, np.inf)
-    Bt = np.empty((m, r))  # column k of diag(sw) A, rows with sw = 0 dropped, contiguous
-    V = np.empty((m, r))  # Householder vectors (row k: entries k..nk-1)
-    beta = np.empty(m)
-    G = np.empty((m, m))
-    d = np.empty(m)
-    e2 = np.empty(m)
-    v = np.empty(m)
-    p_ = np.empty(m)
-    y = np.empty(r)
+    Bt, V, beta, G, d, e2, v, p_, y = _wls_scratch(r, m)
     rows = np.empty(r, dtype=np.int64)
     for i in range(n):
         # Rows of zero weight (padding) change neither R nor the weights: drop them.
@@ -591,69 +675,10 @@ def _wls_kernel(A, sw):
             j = rows[jj]
             for k in range(m):
                 Bt[k, jj] = sw[i, j] * A[i, j, k]
-        # Householder QR, Bt -> R^T (R[k, p] = Bt[p, k] for k <= p).
-        for k in range(m):
-            nrm2 = 0.0
-            for j in range(k, nk):
-                nrm2 += Bt[k, j] * Bt[k, j]
-            nrm = math.sqrt(nrm2)
-            if nrm == 0.0:
-                beta[k] = 0.0
-                continue
-            alpha = -nrm if Bt[k, k] >= 0.0 else nrm
-            for j in range(k, nk):
-                V[k, j] = Bt[k, j]
-            V[k, k] -= alpha
-            vv = 0.0
-            for j in range(k, nk):
-                vv += V[k, j] * V[k, j]
-            bk = 2.0 / vv
-            beta[k] = bk
-            Bt[k, k] = alpha
-            for j in range(k + 1, nk):
-                Bt[k, j] = 0.0
-            for col in range(k + 1, m):
-                sdot = 0.0
-                for j in range(k, nk):
-                    sdot += V[k, j] * Bt[col, j]
-                sdot *= bk
-                for j in range(k, nk):
-                    Bt[col, j] -= sdot * V[k, j]
-        # Condition from the eigenvalues of R^T R, as the numpy path.
-        for p in range(m):
-            for q in range(p, m):
-                sg = 0.0
-                for k in range(p + 1):
-                    sg += Bt[p, k] * Bt[q, k]
-                G[p, q] = sg
-                G[q, p] = sg
-        lmin, lmax = _extreme_eigvals(G, d, e2, v, p_)
-        dmin = np.inf
-        dmax = 0.0
-        for k in range(m):
-            rkk = abs(Bt[k, k])
-            dmin = min(dmin, rkk)
-            dmax = max(dmax, rkk)
-        if not (lmin > _GRAM_RTOL * lmax) or not (dmin > _RANK_RTOL * dmax):
-            continue  # rank deficient: zero weights, infinite condition
-        cond[i] = math.sqrt(lmax / lmin)
-        # c_0 = (Q y) . (sw f) with R^T y = e_0: forward substitution, then the reflectors.
-        for k in range(nk):
-            y[k] = 0.0
-        for k in range(m):
-            sy = 1.0 if k == 0 else 0.0
-            for j in range(k):
-                sy -= Bt[k, j] * y[j]
-            y[k] = sy / Bt[k, k]
-        for k in range(m - 1, -1, -1):
-            if beta[k] == 0.0:
-                continue
-            sdot = 0.0
-            for j in range(k, nk):
-                sdot += V[k, j] * y[j]
-            sdot *= beta[k]
-            for j in range(k, nk):
-                y[j] -= sdot * V[k, j]
+        c = _wls_solve(Bt, nk, m, V, beta, G, d, e2, v, p_, y)
+        if not (c < np.inf):
+            continue
+        cond[i] = c
         for jj in range(nk):
             j = rows[jj]
             a[i, j] = y[jj] * sw[i, j]
@@ -686,3 +711,267 @@ def wls_value_weights(A, sw):
     if r < m or n == 0:
         return np.zeros((n, r)), np.full(n, np.inf)
     return _wls_kernel(A, sw)
+
+
+# ------------------------------------------------------- whole stencils
+_WEIGHT_CODES = {"gaussian": 0, "inverse-distance": 1, "wendland": 2}
+_IDW_EPS2 = 1.0 / 16.0  # as ibprep.stencils
+
+
+@numba.njit(**_JIT)
+def _weight_of(rho, support, kind):
+    """As ibprep.stencils._weight, for one scaled distance."""
+    if kind == 0:
+        t = 2.0 * rho / support
+        return math.exp(-(t * t))
+    if kind == 1:
+        return 1.0 / (rho * rho + _IDW_EPS2)
+    r = min(max(rho / support, 0.0), 1.0)
+    u = 1.0 - r
+    return (u * u) * (u * u) * (4.0 * r + 1.0)
+
+
+@numba.njit(**_JIT)
+def _basis_row(x, y, z, planar, out):
+    """Quadratic monomials at scaled (x, y, z), in the order of ibprep.stencils._basis."""
+    out[0] = 1.0
+    out[1] = x
+    out[2] = y
+    if planar:
+        out[3] = x * x
+        out[4] = x * y
+        out[5] = y * y
+    else:
+        out[3] = z
+        out[4] = x * x
+        out[5] = y * y
+        out[6] = z * z
+        out[7] = x * y
+        out[8] = y * z
+        out[9] = z * x
+
+
+@numba.njit(**_JIT)
+def _normal_derivative_row(x, y, z, nx, ny, nz, planar, out):
+    """Derivative of each monomial along n, in the order of ibprep.stencils._basis_normal_derivative."""
+    out[0] = 0.0
+    out[1] = nx
+    out[2] = ny
+    if planar:
+        out[3] = 2 * x * nx
+        out[4] = y * nx + x * ny
+        out[5] = 2 * y * ny
+    else:
+        out[3] = nz
+        out[4] = 2 * x * nx
+        out[5] = 2 * y * ny
+        out[6] = 2 * z * nz
+        out[7] = y * nx + x * ny
+        out[8] = z * ny + y * nz
+        out[9] = x * nz + z * nx
+
+
+@numba.njit(**_JIT)
+def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt, nfit, allowed, offs, round_n,
+                     round_r, min_visible, kmax, image, neumann, planar, weight_kind, grid_origin, s, dims, cstart,
+                     ccount, citems, pcentre, pradius, pparent, tri, fnormal, rmax):
+    n = cells.shape[0]
+    m = 6 if planar else 10
+    no = offs.shape[0]
+    nb = np.full((n, kmax), -1, dtype=np.int64)
+    nvis = np.zeros(n, dtype=np.int64)
+    used_r = np.zeros(n)
+    wts = np.zeros((n, kmax))
+    wbnd = np.zeros(n)
+    cond = np.full(n, np.inf)
+    cflat = np.empty(no, dtype=np.int64)
+    cvis = np.zeros(no, dtype=np.bool_)
+    cidx = np.empty(no, dtype=np.int64)
+    ex = np.empty(no)
+    ey = np.empty(no)
+    ez = np.empty(no)
+    hit = np.zeros(no, dtype=np.bool_)
+    order = np.empty(no, dtype=np.int64)
+    key = np.empty(no)
+    lo, hi, l_face, l_cx, l_cy, l_cz, l_box, l_so, l_cc, l_r2, c_mx, c_my, c_mz, c_ok = _fan_scratch(
+        citems.shape[0], no)
+    Bt, V, beta, G, d, e2, v, p_, y = _wls_scratch(kmax + 1, m)
+    sw = np.empty(kmax + 1)
+    row_of = np.empty(kmax + 1, dtype=np.int64)
+    brow = np.empty(m)
+    nrounds = round_n.shape[0]
+    s1, s2 = shape3[1], shape3[2]
+    for i in range(n):
+        ai, aj, ak = anchor[i, 0], anchor[i, 1], anchor[i, 2]
+        ox, oy, oz = origin[i, 0], origin[i, 1], origin[i, 2]
+        # Candidates round by round (offsets sorted by length; each round tests only its new ones).
+        n_old = 0
+        count = 0
+        n_off = 0
+        for rd in range(nrounds):
+            n_off = round_n[rd]
+            nc = 0
+            longest = 0.0
+            for c in range(n_old, n_off):
+                cvis[c] = False
+                ci, cj, ck = ai + offs[c, 0], aj + offs[c, 1], ak + offs[c, 2]
+                if ci < 0 or cj < 0 or ck < 0 or ci >= shape3[0] or cj >= s1 or ck >= s2:
+                    continue
+                f = (ci * s1 + cj) * s2 + ck
+                cflat[c] = f
+                if not allowed[tags[f]] or f == cells[i]:
+                    continue
+                x = lower3[0] + (ci + 0.5) * h
+                yy = lower3[1] + (cj + 0.5) * h
+                z = lower3[2] + (ck + 0.5) * h
+                cidx[nc] = c
+                ex[nc] = x
+                ey[nc] = yy
+                ez[nc] = z
+                hit[nc] = False
+                dx, dy, dz = x - ox, yy - oy, z - oz
+                longest = max(longest, dx * dx + dy * dy + dz * dz)
+                nc += 1
+            if nc > 0:
+                _fan_row(ox, oy, oz, ex, ey, ez, nc, hit, math.sqrt(longest) * (1 + 1e-9), grid_origin, s, dims,
+                         cstart, ccount, citems, pcentre, pradius, pparent, tri, fnormal, rmax, lo, hi, l_face,
+                         l_cx, l_cy, l_cz, l_box, l_so, l_cc, l_r2, c_mx, c_my, c_mz, c_ok)
+                for jj in range(nc):
+                    if not hit[jj]:
+                        cvis[cidx[jj]] = True
+                        count += 1
+            n_old = n_off
+            if count >= min_visible or rd == nrounds - 1:
+                used_r[i] = round_r[rd]
+                break
+        # Keep the nearest kmax visible ones.
+        kept = min(count, kmax)
+        nvis[i] = kept
+        cx, cy, cz = centre[i, 0], centre[i, 1], centre[i, 2]
+        if image:
+            # Stable insertion sort of the visible candidates by distance to the fitting point.
+            nv = 0
+            for c in range(n_off):
+                if not cvis[c]:
+                    continue
+                dx = (lower3[0] + (ai + offs[c, 0] + 0.5) * h) - cx
+                dy = (lower3[1] + (aj + offs[c, 1] + 0.5) * h) - cy
+                dz = (lower3[2] + (ak + offs[c, 2] + 0.5) * h) - cz
+                kc = (dx * dx + dy * dy) + dz * dz
+                p = nv
+                while p > 0 and key[p - 1] > kc:
+                    key[p] = key[p - 1]
+                    order[p] = order[p - 1]
+                    p -= 1
+                key[p] = kc
+                order[p] = c
+                nv += 1
+        else:
+            # Offsets are sorted by length from the cell itself: column order is nearest first.
+            nv = 0
+            for c in range(n_off):
+                if cvis[c] and nv < kmax:
+                    order[nv] = c
+                    nv += 1
+        # Rows of the fit: the kept neighbours, then the boundary datum; zero weights dropped.
+        support = used_r[i] + 1.0
+        nk = 0
+        for q in range(kept):
+            c = order[q]
+            nb[i, q] = cflat[c]
+            xs = ((lower3[0] + (ai + offs[c, 0] + 0.5) * h) - cx) / h
+            ys = ((lower3[1] + (aj + offs[c, 1] + 0.5) * h) - cy) / h
+            zs = ((lower3[2] + (ak + offs[c, 2] + 0.5) * h) - cz) / h
+            if planar:
+                zs = 0.0
+            rho = math.sqrt(xs * xs + ys * ys + zs * zs)
+            wq = math.sqrt(_weight_of(rho, support, weight_kind))
+            if wq == 0.0:
+                continue
+            _basis_row(xs, ys, zs, planar, brow)
+            for k in range(m):
+                Bt[k, nk] = wq * brow[k]
+            sw[nk] = wq
+            row_of[nk] = q
+            nk += 1
+        xs = (bpt[i, 0] - cx) / h
+        ys = (bpt[i, 1] - cy) / h
+        zs = 0.0 if planar else (bpt[i, 2] - cz) / h
+        wq = math.sqrt(_weight_of(math.sqrt(xs * xs + ys * ys + zs * zs), support, weight_kind))
+        if wq != 0.0:
+            if neumann:
+                _normal_derivative_row(xs, ys, zs, nfit[i, 0], nfit[i, 1], 0.0 if planar else nfit[i, 2], planar,
+                                       brow)
+            else:
+                _basis_row(xs, ys, zs, planar, brow)
+            for k in range(m):
+                Bt[k, nk] = wq * brow[k]
+            sw[nk] = wq
+            row_of[nk] = -1
+            nk += 1
+        if nk < m:
+            continue  # fewer weighted rows than unknowns: rank deficient
+        cnd = _wls_solve(Bt, nk, m, V, beta, G, d, e2, v, p_, y)
+        if not (cnd < np.inf):
+            continue
+        cond[i] = cnd
+        for jj in range(nk):
+            q = row_of[jj]
+            if q >= 0:
+                wts[i, q] = y[jj] * sw[jj]
+            else:
+                wbnd[i] = y[jj] * sw[jj]
+    return nb, nvis, used_r, wts, wbnd, cond
+
+
+def stencil_fits(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt, nfit, allowed, offsets, radii,
+                 min_visible, kmax, *, image, neumann, planar, weight, index):
+    """Neighbours, visibility and WLS fit of every stencil in one compiled pass.
+
+    The whole middle of :func:`ibprep.stencils.build_stencils` for one cell at a
+    time: candidate cells from the sorted offsets, round by round up to the
+    radii; the segment test of :func:`segments_cross_fan` against the surface
+    pieces near the origin; the nearest ``kmax`` visible kept; the weighted
+    design matrix in scaled coordinates; and the QR solve of
+    :func:`wls_value_weights`. Agrees with the array pipeline it stands in for
+    (tests/test_kernels.py): same neighbours and counts, weights to round-off.
+
+    Parameters
+    ----------
+    tags : (N,) uint8 — flat CellTag codes over shape3.
+    shape3 : (3,) int — grid shape (a 2-D grid with a last extent of 1).
+    lower3 : (3,) float — metres; the grid's lower corner (2-D: z = -h/2).
+    h : float — metres; the spacing.
+    cells : (n,) int — flat indices of the interface cells.
+    anchor : (n, 3) int — the cell the offsets start from.
+    origin : (n, 3) float — metres; where visibility is tested from.
+    centre : (n, 3) float — metres; the fitting point.
+    bpt, nfit : (n, 3) float — boundary point (metres) and unit normal of the fit.
+    allowed : (3,) bool — which tags may be neighbours.
+    offsets : (no, 3) int — candidate offsets sorted by length.
+    radii : sequence of float — cells; the rounds' radii, increasing.
+    min_visible, kmax : int — growth stops at min_visible visible; kmax kept.
+    image, neumann, planar : bool — image-point fit; Neumann boundary row; 6-term basis.
+    weight : str — "gaussian", "inverse-distance" or "wendland".
+    index : TriangleIndex — the bucketed surface.
+
+    Returns
+    -------
+    nb : (n, kmax) int — neighbours, -1 padded; nvis : (n,) int; used_radius : (n,)
+    float; weights : (n, kmax) float; boundary : (n,) float — raw weight of the
+    boundary row; cond : (n,) float — inf where the fit is rank deficient.
+    """
+    offsets = np.ascontiguousarray(offsets, dtype=np.int64)
+    len2 = (offsets * offsets).sum(axis=1)
+    radii = np.asarray(radii, dtype=float)
+    round_n = np.array([np.count_nonzero(len2 <= r * r + 1e-9) for r in radii], dtype=np.int64)
+    f64 = lambda a: np.ascontiguousarray(a, dtype=float)  # noqa: E731
+    return _stencils_kernel(
+        np.ascontiguousarray(tags, dtype=np.uint8), np.asarray(shape3, dtype=np.int64), f64(lower3), float(h),
+        np.ascontiguousarray(cells, dtype=np.int64), np.ascontiguousarray(anchor, dtype=np.int64), f64(origin),
+        f64(centre), f64(bpt), f64(nfit), np.asarray(allowed, dtype=bool), offsets[: round_n[-1]], round_n, radii,
+        int(min_visible), int(kmax), bool(image), bool(neumann), bool(planar), _WEIGHT_CODES[weight],
+        np.asarray(index.origin, dtype=float), float(index.bucket_size), np.asarray(index.dims, dtype=np.int64),
+        index.centre_start, index.centre_count, index.centre_items, index.piece_centre, index.piece_radius,
+        index.piece_parent, index.tri, index.face_normal, float(index.piece_radius.max(initial=0.0)),
+    )

@@ -85,7 +85,8 @@ from .classify import CellTag
 from .errors import InputError
 from .files import atomic_write
 from .grid import Grid
-from .kernels import closest as _closest, segments_cross_fan as _segments_cross_fan, wls_value_weights as _wls_kernel
+from .kernels import closest as _closest, segments_cross_fan as _segments_cross_fan, stencil_fits as _stencil_fits
+from .kernels import wls_value_weights as _wls_kernel
 from .proximity import TriangleIndex
 from .triangles import _loops_from, as_triangles
 
@@ -734,6 +735,83 @@ def build_stencils(
     if interface == "fluid-side" and opts.interface_neighbours:
         allowed[CellTag.INTERFACE] = True
 
+    radii = [opts.radius]
+    while radii[-1] < opts.max_radius - 1e-9:
+        radii.append(min(radii[-1] + _RADIUS_STEP, opts.max_radius))
+    nfit = nrm.copy()
+    if planar:
+        nfit[:, 2] = 0.0
+    fit = _fit_compiled if _COMPILED else _fit_arrays
+    nb, nvis, used_radius, wn, ab, cond = fit(
+        flat_tags, shape3, lower3, h, cells, anchor, origin, centre, bpt, nfit, allowed, radii, opts, planar,
+        index, centres_of,
+    )
+    k = int(max(1, nvis.max()))
+    nb = np.ascontiguousarray(nb[:, :k])
+    wn = wn[:, :k]
+    pad = nb < 0
+    ab = ab * (h if bc == "neumann" else 1.0)  # Neumann row was scaled by h
+    if method == "image-point":
+        gap = np.linalg.norm(x0 - centre, axis=1)
+        if bc == "dirichlet":
+            wn, ab = -wn, 2.0 - ab
+        else:
+            ab = ab - gap
+    wn = np.where(pad, 0.0, wn)
+    bound = np.abs(wn).sum(axis=1) + np.abs(ab) / (h if bc == "neumann" else 1.0)
+    bound[~np.isfinite(cond)] = np.inf  # no fit: unbounded
+    minw = np.minimum(wn.min(axis=1), 0.0)
+    ok = (
+        (nvis >= min_ok_visible)
+        & np.isfinite(cond)
+        & (cond <= lim.max_condition)
+        & (bound <= lim.max_weight_bound)
+        & (minw >= lim.min_weight)
+    )
+    # On 2-D grids flat indices over (nx, ny, 1) equal those over (nx, ny).
+    return Stencils(
+        cells=cells,
+        neighbours=nb,
+        weights=wn,
+        boundary_point=bpt,
+        boundary_normal=nrm,
+        boundary_weight=ab,
+        condition=cond,
+        ok=ok,
+        n_visible=nvis,
+        weight_bound=bound,
+        min_weight=minw,
+        **meta,
+    )
+
+
+# If false, build_stencils uses the array pipeline below instead of the compiled pass
+# (the reference the compiled pass is tested against; tests switch it).
+_COMPILED = True
+
+
+def _fit_compiled(flat_tags, shape3, lower3, h, cells, anchor, origin, centre, bpt, nfit, allowed, radii, opts,
+                  planar, index, centres_of):
+    """Neighbours and fit of every stencil in one compiled pass (ibprep.kernels.stencil_fits)."""
+    return _stencil_fits(
+        flat_tags, shape3, lower3, h, cells, anchor, origin, centre, bpt, nfit, allowed,
+        _offsets(opts.max_radius, planar), radii, opts.min_visible, opts.max_neighbours,
+        image=opts.method == "image-point", neumann=opts.bc == "neumann", planar=planar, weight=opts.weight,
+        index=index,
+    )
+
+
+def _fit_arrays(flat_tags, shape3, lower3, h, cells, anchor, origin, centre, bpt, nfit, allowed, radii, opts,
+                planar, index, centres_of):
+    """The same as _fit_compiled with batched array operations over all stencils.
+
+    Returns nb (n, kmax) int, nvis (n,), used_radius (n,), weights (n, kmax), the
+    boundary row's raw weight (n,) and the condition (n,).
+    """
+    n = cells.size
+    method = opts.method
+    weight = opts.weight
+    m = 6 if planar else 10
     kmax = opts.max_neighbours
     nb = np.full((n, kmax), -1, dtype=np.int64)
     nvis = np.zeros(n, dtype=np.int64)
@@ -795,55 +873,22 @@ def build_stencils(
     if planar:
         xi = xi[..., :2]
         xb = xb[..., :2]
-        nfit = nrm[:, :2]
-    else:
-        nfit = nrm
+        nfit = nfit[:, :2]
     support = used_radius + 1.0
     rho = np.linalg.norm(xi, axis=2)
     w = np.where(pad, 0.0, _weight(rho, support[:, None], weight))
     wb = _weight(np.linalg.norm(xb, axis=1), support, weight)
     A = np.empty((n, k + 1, m))
-    np.multiply(_basis(xi, planar), (~pad)[:, :, None], out=A[:, :k])
-    if bc == "dirichlet":
+    A[:, :k] = _basis(xi, planar) * (~pad)[:, :, None]
+    if opts.bc == "dirichlet":
         A[:, k] = _basis(xb, planar)
     else:
         A[:, k] = _basis_normal_derivative(xb, nfit, planar)
     sw = np.sqrt(np.concatenate([w, wb[:, None]], axis=1))
     a, cond = _wls_kernel(A, sw)
-    wn = a[:, :k]
-    ab = a[:, k] * (h if bc == "neumann" else 1.0)  # Neumann row was scaled by h
-    if method == "image-point":
-        gap = np.linalg.norm(x0 - centre, axis=1)
-        if bc == "dirichlet":
-            wn, ab = -wn, 2.0 - ab
-        else:
-            ab = ab - gap
-    wn = np.where(pad, 0.0, wn)
-    bound = np.abs(wn).sum(axis=1) + np.abs(ab) / (h if bc == "neumann" else 1.0)
-    bound[~np.isfinite(cond)] = np.inf  # no fit: unbounded
-    minw = np.minimum(wn.min(axis=1), 0.0)
-    ok = (
-        (nvis >= min_ok_visible)
-        & np.isfinite(cond)
-        & (cond <= lim.max_condition)
-        & (bound <= lim.max_weight_bound)
-        & (minw >= lim.min_weight)
-    )
-    # On 2-D grids flat indices over (nx, ny, 1) equal those over (nx, ny).
-    return Stencils(
-        cells=cells,
-        neighbours=nb,
-        weights=wn,
-        boundary_point=bpt,
-        boundary_normal=nrm,
-        boundary_weight=ab,
-        condition=cond,
-        ok=ok,
-        n_visible=nvis,
-        weight_bound=bound,
-        min_weight=minw,
-        **meta,
-    )
+    wts = np.zeros((n, opts.max_neighbours))
+    wts[:, :k] = a[:, :k]
+    return np.pad(nb, ((0, 0), (0, opts.max_neighbours - k)), constant_values=-1), nvis, used_radius, wts, a[:, k], cond
 
 
 def _side_band(loops, z0: float, half: float, h: float):

@@ -218,6 +218,8 @@ def _stencil_calls(monkeypatch, case):
         monkeypatch.setattr(stencils, "_segments_cross_fan", lambda index, *a: fan(index, *a))
     if hasattr(stencils, "_closest"):
         monkeypatch.setattr(stencils, "_closest", lambda index, p, **kw: clo(index, p, **kw))
+    # The array pipeline makes the fan calls (the compiled pass tests its segments inside).
+    monkeypatch.setattr(stencils, "_COMPILED", False)
     h = 1.0 / 8
     L = 1.0 + 6 * h
     if case == "sphere-3d":
@@ -299,3 +301,67 @@ def test_wls_value_weights_rank_deficient_and_too_few_rows():
     assert (a1[:30] == 0).all()
     a_few, c_few = kernels.wls_value_weights(np.ones((3, 5, 10)), np.ones((3, 5)))
     assert a_few.shape == (3, 5) and np.isinf(c_few).all() and (a_few == 0).all()
+
+
+def _tagged(solid, ghost):
+    from ibprep.classify import CellTag
+    from scipy import ndimage
+
+    tags = np.full(solid.shape, CellTag.FLUID, np.uint8)
+    tags[solid] = CellTag.SOLID
+    st = ndimage.generate_binary_structure(solid.ndim, 1)
+    if ghost:
+        tags[solid & ndimage.binary_dilation(~solid, st)] = CellTag.INTERFACE
+    else:
+        tags[~solid & ndimage.binary_dilation(solid, st)] = CellTag.INTERFACE
+    return tags
+
+
+def _fit_cases():
+    h = 1.0 / 8
+    L = 1.0 + 6 * h
+    sphere = trimesh.creation.icosphere(subdivisions=3, radius=1.0)
+    g3 = Grid(lower=(-L, -L, -L), upper=(L, L, L), spacing=h)
+    s3 = trimesh.Trimesh(sphere.vertices, sphere.faces).contains(g3.centres().reshape(-1, 3)).reshape(g3.shape)
+    th = np.linspace(0.0, 2.0 * np.pi, 200, endpoint=False)
+    circle = np.column_stack([np.cos(th), 0.6 * np.sin(th)])
+    g2 = Grid(lower=(-L, -L), upper=(L, L), spacing=h)
+    c2 = g2.centres()
+    s2 = c2[..., 0] ** 2 + (c2[..., 1] / 0.6) ** 2 < 1.0
+    # A slab thinner than two cells (far-side cells must stay invisible), on a single-layer 3-D grid too.
+    slab = trimesh.creation.box(bounds=[(-0.3, -0.1, -3.0), (0.3, 0.1, 3.0)])
+    gl = Grid(lower=(-L, -L, -h / 2), upper=(L, L, h / 2), spacing=h)
+    cl = gl.centres()
+    sl = (np.abs(cl[..., 0]) < 0.3) & (np.abs(cl[..., 1]) < 0.1)
+    surf3 = (sphere.vertices, sphere.faces)
+    yield "sphere dirichlet", _tagged(s3, False), g3, surf3, {}
+    yield "sphere neumann wendland", _tagged(s3, False), g3, surf3, dict(bc="neumann", weight="wendland")
+    yield "sphere ghost direct idw", _tagged(s3, True), g3, surf3, dict(interface="solid-side", weight="inverse-distance")
+    yield "sphere ghost image", _tagged(s3, True), g3, surf3, dict(interface="solid-side", method="image-point")
+    yield "sphere no interface neighbours", _tagged(s3, False), g3, surf3, dict(interface_neighbours=False, radius=1.5)
+    yield "ellipse 2-D neumann", _tagged(s2, False), g2, circle, dict(bc="neumann")
+    yield "ellipse 2-D image", _tagged(s2, True), g2, circle, dict(interface="solid-side", method="image-point", bc="neumann")
+    yield "thin slab single layer", _tagged(sl, False), gl, (slab.vertices, slab.faces), dict(max_neighbours=14)
+
+
+@pytest.mark.parametrize("case", list(_fit_cases()), ids=lambda c: c[0])
+def test_compiled_stencil_pass_equals_array_pipeline(monkeypatch, case):
+    # Reference: the project's own array pipeline (stencils._fit_arrays, whose fan, closest-point
+    # and WLS steps are held to numpy/LAPACK above). Integer results must be equal; weights and
+    # figures agree to round-off (the exp of numba and numpy may differ in the last bit).
+    from ibprep import build_stencils, stencils
+
+    _, tags, grid, surface, kw = case
+    fast = build_stencils(tags, grid, surface, **kw)
+    monkeypatch.setattr(stencils, "_COMPILED", False)
+    ref = build_stencils(tags, grid, surface, **kw)
+    assert len(ref) >= 10
+    for name in ("cells", "neighbours", "n_visible", "ok"):
+        np.testing.assert_array_equal(getattr(fast, name), getattr(ref, name), err_msg=name)
+    scale = np.maximum(np.abs(ref.weights).max(axis=1), 1.0)
+    np.testing.assert_allclose(fast.weights / scale[:, None], ref.weights / scale[:, None], rtol=0, atol=1e-12)
+    np.testing.assert_allclose(fast.boundary_weight, ref.boundary_weight, rtol=1e-11, atol=1e-12)
+    finite = np.isfinite(ref.condition)
+    np.testing.assert_array_equal(np.isfinite(fast.condition), finite)
+    np.testing.assert_allclose(fast.condition[finite], ref.condition[finite], rtol=WLS_COND_RTOL)
+    np.testing.assert_allclose(fast.weight_bound[finite], ref.weight_bound[finite], rtol=1e-11)
