@@ -549,6 +549,31 @@ def _crossings(vertices: np.ndarray, faces: np.ndarray, xs, ys, zs) -> _Crossing
 
 
 # --------------------------------------------------------------------------- dense tagging
+@numba.njit(**_JIT)
+def _solid_box_nb(i, j, k, nx):
+    """Index bounds of the crossings inside the grid along x: (i_lo, i_hi, j_lo, j_hi, k_lo, k_hi).
+
+    ``i_hi`` is nx when some crossing lies past the last centre; ``j_hi``, ``k_hi``
+    are exclusive. ``i_lo > i_hi`` when no crossing lies inside the grid.
+    """
+    big = np.iinfo(np.int64).max
+    i_lo, i_hi, j_lo, j_hi, k_lo, k_hi = big, -1, big, -1, big, -1
+    beyond = False
+    for c in range(i.size):
+        if i[c] >= nx:
+            beyond = True
+            continue
+        i_lo = min(i_lo, i[c])
+        i_hi = max(i_hi, i[c])
+        j_lo = min(j_lo, j[c])
+        j_hi = max(j_hi, j[c])
+        k_lo = min(k_lo, k[c])
+        k_hi = max(k_hi, k[c])
+    if beyond and i_hi >= 0:
+        i_hi = nx
+    return i_lo, i_hi, j_lo, j_hi + 1, k_lo, k_hi + 1
+
+
 def _solid_box(cr: _Crossings, shape3) -> tuple[slice, slice, slice] | None:
     """Index box holding every solid centre of the crossings, plus a one-cell margin (None: no crossing in the grid).
 
@@ -556,17 +581,12 @@ def _solid_box(cr: _Crossings, shape3) -> tuple[slice, slice, slice] | None:
     lies in this box.
     """
     nx, ny, nz = shape3
-    inside = cr.i < nx
-    if not np.any(inside):
-        return None
-    beyond = not np.all(inside)
-    i, j, k = cr.i[inside], cr.j[inside], cr.k[inside]
     # Cells at or beyond the last crossing of their row have winding zero for a
     # closed surface, so the box ends before max(i) -- unless some row leaves the
     # body only past the grid's last centre: then the box runs to the grid's end.
-    i_lo, i_hi = int(i.min()), (nx if beyond else int(i.max()))
-    j_lo, j_hi = int(j.min()), int(j.max()) + 1
-    k_lo, k_hi = int(k.min()), int(k.max()) + 1
+    i_lo, i_hi, j_lo, j_hi, k_lo, k_hi = _solid_box_nb(cr.i, cr.j, cr.k, nx)
+    if i_lo > i_hi:
+        return None
     return (
         slice(max(i_lo - 1, 0), min(i_hi + 1, nx)),
         slice(max(j_lo - 1, 0), min(j_hi + 1, ny)),
