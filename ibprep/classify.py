@@ -41,8 +41,9 @@ the rounding of the crossing abscissa along x (about 1e-16 of the coordinates).
 Cost
 ----
 Work and transient memory are confined to the index box of the body: the crossing
-enumeration costs a few hundred bytes per lattice point covered by a projected
-triangle (in chunks of at most about 80 MB), the winding sum one byte per cell of
+enumeration (compiled; the numpy reference path holds a few hundred bytes per
+candidate in chunks of at most about 80 MB) costs 25 bytes per lattice point
+covered by a projected triangle's bounding box, the winding sum one byte per cell of
 the box, the interface layer two more; the tag array itself is the only
 whole-grid allocation. Winding numbers are summed in int8, which would wrap only
 past 127 nested layers of surface along one row. The floating-point filter
