@@ -246,3 +246,22 @@ def test_step_of_an_open_surface_warns_like_classify():
     tags = classify((v, f), grid)
     with pytest.warns(IbprepWarning, match="not closed"):
         step_tags(tags, (v + 0.01, f[1:]), grid, previous_surface=(v, f))
+
+
+@pytest.mark.parametrize("interface", ["fluid-side", "solid-side"])
+def test_compiled_retag_equals_the_numpy_path(interface):
+    from ibprep.classify import _retag, _retag_compiled
+
+    grid = Grid(lower=(-1, -1, -1), upper=(1, 1, 1), spacing=1 / 20)
+    a = _mesh("torus", 3)
+    b = (a[0] + [0.03, -0.02, 0.04], a[1])
+    axes, shape3 = _axes3(grid), grid.shape
+    fresh, covered, _, _ = _changed_cells(_crossings(*b, *axes), _crossings(*a, *axes), shape3)
+    assert fresh.size and covered.size
+    start = classify(a, grid, interface=interface).reshape(-1)
+    start[covered] = CellTag.SOLID
+    start[fresh] = CellTag.FLUID
+    ref, got = start.copy(), start.copy()
+    assert _retag_compiled(got, fresh, covered, shape3, interface) == _retag(ref, fresh, covered, shape3, interface)
+    np.testing.assert_array_equal(got, ref)
+    np.testing.assert_array_equal(got.reshape(shape3), classify(b, grid, interface=interface))
