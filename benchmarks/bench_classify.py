@@ -4,6 +4,7 @@ Run from the repository root::
 
     python benchmarks/bench_classify.py            # 64^3, 128^3, 256^3-class grids; 2k/20k/200k-triangle wings
     python benchmarks/bench_classify.py --quick    # small sizes only
+    python benchmarks/bench_classify.py --steps-only   # the incremental-step table only (no peers)
     python benchmarks/bench_classify.py --out benchmarks/RESULTS-classify.md
 
 Peers, all given only the cell centres inside the body's bounding box (ibprep
@@ -134,7 +135,7 @@ def distance_h(mesh, P, h):
     return np.sqrt(d2) / h
 
 
-def run(quick: bool, repeats: int):
+def run(quick: bool, repeats: int, steps_only: bool = False):
     lines = []
     say = lines.append
     grid_names = ["64^3", "128^3"] if quick else list(GRID_CLASSES)
@@ -149,7 +150,7 @@ def run(quick: bool, repeats: int):
         grid = grid_of_class(GRID_CLASSES[gname])
         for wname in wing_names:
             base = wing_of_size(wname)
-            for pose, mesh in (("rest", base), ("pitch 20°", pitched(base, 20.0, 0.05))):
+            for pose, mesh in () if steps_only else (("rest", base), ("pitch 20°", pitched(base, 20.0, 0.05))):
                 t_ib, tags = best_of(lambda: classify(mesh, grid), repeats)
                 sl, P = bbox_points(grid, mesh)
                 ours = (tags[sl] == CellTag.SOLID).reshape(-1)
@@ -187,18 +188,15 @@ def run(quick: bool, repeats: int):
                         dist += f" ({distance_h(mesh, P[differ[:2000]], grid.spacing).max():.1e})"
                     say(cells + f"| {t_p:.3f} | {t_p / t_ib:,.0f} | {dist} |")
                     print(lines[-1], flush=True)
+        for wname in wing_names:
+            base = wing_of_size(wname)
             # Incremental step in a time loop: pitch 20.0° -> 20.5° -> 21.0°, plunge
             # +0.25 h per step (the body moves less than one cell). The timed step
             # starts from the previous Transition (its crossings are reused).
             m0 = pitched(base, 20.0, 0.05)
             m1 = pitched(base, 20.5, 0.05 + 0.25 * grid.spacing)
             m2 = pitched(base, 21.0, 0.05 + 0.50 * grid.spacing)
-            tr1 = step_tags(classify(m0, grid), m1, grid, previous_surface=m0)
-            t_full, full = best_of(lambda: classify(m2, grid), 3 * repeats)
-            t_step, tr = best_of(lambda: step_tags(tr1, m2, grid), 3 * repeats)
-            assert np.array_equal(tr.tags, full), "stepping must equal a full tagging"
-            steps.append(f"| {gname} | {grid.size:,} | wing pitched, {len(base[1]):,} | {t_full * 1e3:.1f} | {t_step * 1e3:.1f} | "
-                         f"{t_step / t_full:.2f} | {tr.fresh.size:,} / {tr.covered.size:,} |")
+            steps.append(step_row(gname, grid, f"wing pitched, {len(base[1]):,}", m0, m1, m2, 3 * repeats))
             print(steps[-1], flush=True)
     # A body whose index box fills much of the grid: a full tagging is then bound
     # by the cells of the box, a step by the surface.
@@ -208,30 +206,85 @@ def run(quick: bool, repeats: int):
         sph0 = sphere_mesh(0.6, subdivisions=5, centre=centre)
         sph1 = (sph0[0] + [0.25 * grid.spacing, 0.1 * grid.spacing, 0.0], sph0[1])
         sph2 = (sph0[0] + [0.50 * grid.spacing, 0.2 * grid.spacing, 0.0], sph0[1])
-        tr1 = step_tags(classify(sph0, grid), sph1, grid, previous_surface=sph0)
-        t_full, full = best_of(lambda: classify(sph2, grid), 3 * repeats)
-        t_step, tr = best_of(lambda: step_tags(tr1, sph2, grid), 3 * repeats)
-        assert np.array_equal(tr.tags, full), "stepping must equal a full tagging"
-        steps.append(f"| {gname} | {grid.size:,} | sphere R 0.6, {len(sph0[1]):,} | {t_full * 1e3:.1f} | {t_step * 1e3:.1f} | "
-                     f"{t_step / t_full:.2f} | {tr.fresh.size:,} / {tr.covered.size:,} |")
+        steps.append(step_row(gname, grid, f"sphere R 0.6, {len(sph0[1]):,}", sph0, sph1, sph2, 3 * repeats))
         print(steps[-1], flush=True)
+    # The demo case's finest level and wing, two poses one solver time step apart
+    # (the pair the sweep steps between).
+    steps.append(demo_step_row(3 * repeats))
+    print(steps[-1], flush=True)
     say("")
-    say("Incremental step (pitch 20.5° → 21.0°, plunge +0.25 h, from the previous Transition) against a full tagging; the step result is checked equal to the full tagging:")
+    say("Incremental step against a full tagging (`classify` on the same grid and pose), timed side by side "
+        "in one loop (each repeat: full, step, step with `overwrite_previous=True`); best of the repeats, wall "
+        "and CPU (process) time. Wings: pitch 20.5° → 21.0°, plunge +0.25 h, from the previous Transition; "
+        "sphere: moved by (0.25, 0.1, 0) h. Every step result is checked equal to the full tagging:")
     say("")
-    say("| grid | cells | body, triangles | full [ms] | step [ms] | step / full | fresh / covered |")
-    say("|---|---|---|---|---|---|---|")
+    say("| grid | cells | body, triangles | full [ms] wall / CPU | step [ms] wall / CPU | step / full | "
+        "step, overwrite [ms] wall / CPU | overwrite / full | full / step Gcells/s | fresh / covered |")
+    say("|---|---|---|---|---|---|---|---|---|---|")
     lines.extend(steps)
     return lines
+
+
+def time_step(grid, m0, m1, m2, repeats: int):
+    """Best-of wall and CPU seconds of classify(m2), step_tags(previous, m2) and the same with overwrite_previous.
+
+    ``previous`` is the Transition of the step m0 -> m1 (crossings cached), rebuilt
+    untimed before each overwriting step, which spends it. The three are timed in
+    turn inside each repeat, so machine load affects all alike.
+    """
+    tags0 = classify(m0, grid)
+    tr1 = step_tags(tags0, m1, grid, previous_surface=m0)
+    best = {name: [np.inf, np.inf] for name in ("full", "step", "overwrite")}
+    out = {}
+    for _ in range(repeats):
+        spare = step_tags(tags0, m1, grid, previous_surface=m0)
+        for name, fn in (
+            ("full", lambda: classify(m2, grid)),
+            ("step", lambda: step_tags(tr1, m2, grid)),
+            ("overwrite", lambda: step_tags(spare, m2, grid, overwrite_previous=True)),
+        ):
+            w, c = time.perf_counter(), time.process_time()
+            out[name] = fn()
+            w, c = time.perf_counter() - w, time.process_time() - c
+            best[name][0] = min(best[name][0], w)
+            best[name][1] = min(best[name][1], c)
+    full = out["full"]
+    for name in ("step", "overwrite"):
+        assert np.array_equal(out[name].tags, full), "stepping must equal a full tagging"
+    return best, out["step"]
+
+
+def step_row(gname, grid, body, m0, m1, m2, repeats):
+    """One markdown row of the stepping table."""
+    best, tr = time_step(grid, m0, m1, m2, repeats)
+    (fw, fc), (sw, sc), (ow, oc) = best["full"], best["step"], best["overwrite"]
+    return (f"| {gname} | {grid.size:,} | {body} | {fw * 1e3:.2f} / {fc * 1e3:.2f} | {sw * 1e3:.2f} / {sc * 1e3:.2f} | "
+            f"**{sw / fw:.2f}** | {ow * 1e3:.2f} / {oc * 1e3:.2f} | **{ow / fw:.2f}** | "
+            f"{grid.size / fw / 1e9:.1f} / {grid.size / sw / 1e9:.1f} | {tr.fresh.size:,} / {tr.covered.size:,} |")
+
+
+def demo_step_row(repeats):
+    """The stepping row of the demo case's finest level (21.8 M cells) and wing."""
+    from ibprep.case import parse_case
+    from ibprep.demo import DEMO_CASE
+
+    case = parse_case(DEMO_CASE)
+    grid = case.grid.finest
+    dt = case.time.step
+    t0 = 0.3 * case.motion.period
+    m0, m1, m2 = (case.world_surface(t0 + n * dt) for n in range(3))
+    return step_row("demo finest", grid, f"demo wing (t = 0.3 T, dt), {len(m0[1]):,}", m0, m1, m2, repeats)
 
 
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="small sizes only")
     ap.add_argument("--repeats", type=int, default=3)
+    ap.add_argument("--steps-only", action="store_true", help="only the incremental-step table (no peers)")
     ap.add_argument("--out", help="write the markdown table here")
     args = ap.parse_args(argv)
     warnings.simplefilter("ignore")
-    lines = run(args.quick, args.repeats)
+    lines = run(args.quick, args.repeats, args.steps_only)
     text = "\n".join(lines)
     print(text)
     if args.out:

@@ -41,8 +41,9 @@ the rounding of the crossing abscissa along x (about 1e-16 of the coordinates).
 Cost
 ----
 Work and transient memory are confined to the index box of the body: the crossing
-enumeration costs a few hundred bytes per lattice point covered by a projected
-triangle (in chunks of at most about 80 MB), the winding sum one byte per cell of
+enumeration (compiled; the numpy reference path holds a few hundred bytes per
+candidate in chunks of at most about 80 MB) costs 25 bytes per lattice point
+covered by a projected triangle's bounding box, the winding sum one byte per cell of
 the box, the interface layer two more; the tag array itself is the only
 whole-grid allocation. Winding numbers are summed in int8, which would wrap only
 past 127 nested layers of surface along one row. The floating-point filter
@@ -65,6 +66,7 @@ from dataclasses import dataclass, field
 from enum import IntEnum
 from fractions import Fraction
 
+import numba
 import numpy as np
 
 from .errors import IbprepWarning, InputError
@@ -241,8 +243,8 @@ def _lattice_range(axis: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> tuple[np
     return first, stop
 
 
-def _crossings(vertices: np.ndarray, faces: np.ndarray, xs, ys, zs) -> _Crossings:
-    """All crossings of the centre rows (y_j, z_k) along x with the triangles."""
+def _crossings_numpy(vertices: np.ndarray, faces: np.ndarray, xs, ys, zs) -> _Crossings:
+    """All crossings of the centre rows (y_j, z_k) along x with the triangles (numpy reference of :func:`_crossings`)."""
     vt = np.ascontiguousarray(vertices.T)
     ft = np.ascontiguousarray(faces.T)
     y0, y1, y2 = vt[1][ft[0]], vt[1][ft[1]], vt[1][ft[2]]
@@ -369,30 +371,241 @@ def _crossings_chunk(T, j0, k0, nk, counts, xs, ys, zs):
     return i, j[keep], k[keep], w
 
 
+# --------------------------------------------------------------------------- compiled crossings
+# The same enumeration as _crossings_numpy, one triangle and one lattice point at a
+# time, with the same floating-point expressions in the same order (fastmath off, so
+# no re-association or fused multiply-add): every crossing it reports is bit for bit
+# the one the numpy path reports. A triangle needing exact arithmetic (a zero-area
+# test or an edge test the floating-point filter cannot settle) is handed back whole
+# to the numpy path, which owns the rational fallback and the simulation-of-simplicity
+# ties.
+_JIT = dict(cache=True, nogil=True, fastmath=False, error_model="numpy")
+
+
+@numba.njit(**_JIT)
+def _range_nb(axis, inv_h, lo, hi):
+    """[first, stop) of the centres of ``axis`` in [lo, hi]; scalar twin of _lattice_range.
+
+    The guess from the uniform spacing (``inv_h`` = 1 / spacing) is made exact by
+    comparisons with the centre coordinates themselves.
+    """
+    n = axis.size
+    g = (lo - axis[0]) * inv_h
+    first = 0 if not g > 0.0 else (n if g >= n else int(g))
+    g = (hi - axis[0]) * inv_h
+    stop = 0 if not g >= 0.0 else (n if g >= n else int(g) + 1)
+    while first < n and axis[first] < lo:
+        first += 1
+    while first > 0 and axis[first - 1] >= lo:
+        first -= 1
+    while stop < n and axis[stop] <= hi:
+        stop += 1
+    while stop > 0 and axis[stop - 1] > hi:
+        stop -= 1
+    return first, stop
+
+
+@numba.njit(**_JIT)
+def _first_beyond_nb(xs, inv_h, x):
+    """searchsorted(xs, x, side='right') for uniformly spaced sorted xs (guess, then exact comparisons)."""
+    n = xs.size
+    g = (x - xs[0]) * inv_h
+    i = 0 if not g >= 0.0 else (n if g >= n else int(g) + 1)
+    while i < n and xs[i] <= x:
+        i += 1
+    while i > 0 and xs[i - 1] > x:
+        i -= 1
+    return i
+
+
+@numba.njit(**_JIT)
+def _crossings_nb(vx, vy, vz, f0, f1, f2, xs, ys, zs):
+    """Crossings of every triangle the filter settles; returns (i, j, k, w, count, exact).
+
+    ``exact`` lists the triangles left to the numpy path (exact arithmetic needed).
+    """
+    m = f0.size
+    inv_hx = 1.0 / (xs[1] - xs[0]) if xs.size > 1 else 1.0
+    inv_hy = 1.0 / (ys[1] - ys[0]) if ys.size > 1 else 1.0
+    inv_hz = 1.0 / (zs[1] - zs[0]) if zs.size > 1 else 1.0
+    j0s = np.empty(m, np.int64)
+    j1s = np.empty(m, np.int64)
+    k0s = np.empty(m, np.int64)
+    k1s = np.empty(m, np.int64)
+    status = np.zeros(m, np.int8)  # 0 skip, 1 enumerate, 2 exact (numpy path)
+    total = 0
+    for t in range(m):
+        a, b, c = f0[t], f1[t], f2[t]
+        y0, y1, y2 = vy[a], vy[b], vy[c]
+        z0, z1, z2 = vz[a], vz[b], vz[c]
+        j0, j1 = _range_nb(ys, inv_hy, min(min(y0, y1), y2), max(max(y0, y1), y2))
+        k0, k1 = _range_nb(zs, inv_hz, min(min(z0, z1), z2), max(max(z0, z1), z2))
+        if j1 <= j0 or k1 <= k0:
+            continue
+        # Zero projected area (exactly) -> never crossed; _orient_sign's cases.
+        dy = y1 - y0
+        dz = z1 - z0
+        qy = y2 - y0
+        qz = z2 - z0
+        left = dy * qz
+        right = dz * qy
+        det = left - right
+        if not (abs(det) > _CCW_ERRBOUND * (abs(left) + abs(right))):
+            left0 = dy == 0.0 or qz == 0.0
+            right0 = dz == 0.0 or qy == 0.0
+            if left0 and right0:
+                continue  # exactly zero area
+            if not (left0 or right0):
+                status[t] = 2
+                continue
+        j0s[t], j1s[t], k0s[t], k1s[t] = j0, j1, k0, k1
+        status[t] = 1
+        total += (j1 - j0) * (k1 - k0)
+    out_i = np.empty(total, np.int64)
+    out_j = np.empty(total, np.int64)
+    out_k = np.empty(total, np.int64)
+    out_w = np.empty(total, np.int8)
+    n = 0
+    for t in range(m):
+        if status[t] != 1:
+            continue
+        a, b, c = f0[t], f1[t], f2[t]
+        x0, x1, x2 = vx[a], vx[b], vx[c]
+        y0, y1, y2 = vy[a], vy[b], vy[c]
+        z0, z1, z2 = vz[a], vz[b], vz[c]
+        dyab, dzab = y1 - y0, z1 - z0
+        dybc, dzbc = y2 - y1, z2 - z1
+        dyca, dzca = y0 - y2, z0 - z2
+        e1x = x1 - x0
+        e2x, e2y, e2z = x2 - x0, y2 - y0, z2 - z0
+        n_x = dyab * e2z - dzab * e2y
+        n_y = dzab * e2x - e1x * e2z
+        n_z = e1x * e2y - dyab * e2x
+        ky = n_y / n_x
+        kz = n_z / n_x
+        xlo = min(min(x0, x1), x2)
+        xhi = max(max(x0, x1), x2)
+        ax = x0
+        if not (np.isfinite(ky) and np.isfinite(kz)):  # n_x underflowed: the mid abscissa
+            ky = 0.0
+            kz = 0.0
+            ax = 0.5 * (xlo + xhi)
+        start = n
+        for j in range(j0s[t], j1s[t]):
+            py = ys[j]
+            for k in range(k0s[t], k1s[t]):
+                pz = zs[k]
+                # _side_filtered for the three edges, same expressions.
+                r = (pz - z0) * dyab
+                s = (py - y0) * dzab
+                d = r - s
+                sure = abs(d) > (abs(r) + abs(s)) * _CCW_ERRBOUND
+                l_ab = d > 0
+                r = (pz - z1) * dybc
+                s = (py - y1) * dzbc
+                d = r - s
+                sure = sure and abs(d) > (abs(r) + abs(s)) * _CCW_ERRBOUND
+                l_bc = d > 0
+                r = (pz - z2) * dyca
+                s = (py - y2) * dzca
+                d = r - s
+                sure = sure and abs(d) > (abs(r) + abs(s)) * _CCW_ERRBOUND
+                l_ca = d > 0
+                if not sure:
+                    status[t] = 2
+                    break
+                if l_ab != l_bc or l_bc != l_ca:
+                    continue
+                x = ax - ((py - y0) * ky + (pz - z0) * kz)
+                x = min(max(x, xlo), xhi)
+                out_i[n] = _first_beyond_nb(xs, inv_hx, x)
+                out_j[n] = j
+                out_k[n] = k
+                out_w[n] = -1 if l_ab else 1
+                n += 1
+            if status[t] == 2:
+                break
+        if status[t] == 2:
+            n = start  # drop this triangle's crossings: the numpy path redoes it
+    exact = np.flatnonzero(status == 2)
+    return out_i, out_j, out_k, out_w, n, exact
+
+
+def _crossings(vertices: np.ndarray, faces: np.ndarray, xs, ys, zs) -> _Crossings:
+    """All crossings of the centre rows (y_j, z_k) along x with the triangles.
+
+    Compiled enumeration (:func:`_crossings_nb`); the few triangles that need exact
+    arithmetic go through :func:`_crossings_numpy`. The crossings equal the numpy
+    path's bit for bit (``tests/test_classify_step.py`` checks it); only their order
+    may differ.
+    """
+    vt = np.ascontiguousarray(vertices.T, dtype=np.float64)
+    ft = np.ascontiguousarray(faces.T, dtype=np.int64)
+    i, j, k, w, n, exact = _crossings_nb(vt[0], vt[1], vt[2], ft[0], ft[1], ft[2], xs, ys, zs)
+    i, j, k, w = i[:n], j[:n], k[:n], w[:n]
+    if exact.size:
+        rest = _crossings_numpy(vertices, faces[exact], xs, ys, zs)
+        i, j, k, w = (np.concatenate([p, q]) for p, q in zip((i, j, k, w), (rest.i, rest.j, rest.k, rest.w)))
+    return _Crossings(i, j, k, w)
+
+
 # --------------------------------------------------------------------------- dense tagging
+@numba.njit(**_JIT)
+def _solid_box_nb(i, j, k, nx):
+    """Index bounds of the crossings inside the grid along x: (i_lo, i_hi, j_lo, j_hi, k_lo, k_hi).
+
+    ``i_hi`` is nx when some crossing lies past the last centre; ``j_hi``, ``k_hi``
+    are exclusive. ``i_lo > i_hi`` when no crossing lies inside the grid.
+    """
+    big = np.iinfo(np.int64).max
+    i_lo, i_hi, j_lo, j_hi, k_lo, k_hi = big, -1, big, -1, big, -1
+    beyond = False
+    for c in range(i.size):
+        if i[c] >= nx:
+            beyond = True
+            continue
+        i_lo = min(i_lo, i[c])
+        i_hi = max(i_hi, i[c])
+        j_lo = min(j_lo, j[c])
+        j_hi = max(j_hi, j[c])
+        k_lo = min(k_lo, k[c])
+        k_hi = max(k_hi, k[c])
+    if beyond and i_hi >= 0:
+        i_hi = nx
+    return i_lo, i_hi, j_lo, j_hi + 1, k_lo, k_hi + 1
+
+
+def _solid_box(cr: _Crossings, shape3) -> tuple[slice, slice, slice] | None:
+    """Index box holding every solid centre of the crossings, plus a one-cell margin (None: no crossing in the grid).
+
+    The margin holds the interface layer, so every cell a tagging leaves non-fluid
+    lies in this box.
+    """
+    nx, ny, nz = shape3
+    # Cells at or beyond the last crossing of their row have winding zero for a
+    # closed surface, so the box ends before max(i) -- unless some row leaves the
+    # body only past the grid's last centre: then the box runs to the grid's end.
+    i_lo, i_hi, j_lo, j_hi, k_lo, k_hi = _solid_box_nb(cr.i, cr.j, cr.k, nx)
+    if i_lo > i_hi:
+        return None
+    return (
+        slice(max(i_lo - 1, 0), min(i_hi + 1, nx)),
+        slice(max(j_lo - 1, 0), min(j_hi + 1, ny)),
+        slice(max(k_lo - 1, 0), min(k_hi + 1, nz)),
+    )
+
+
 def _solid_region(cr: _Crossings, shape3) -> tuple[tuple[slice, slice, slice], np.ndarray] | None:
     """Solid mask over the index box holding every solid centre, plus a one-cell margin.
 
     Returns ``(region, solid)`` with ``solid`` a bool array of the region's shape, or
     None when no row crosses the surface.
     """
-    nx, ny, nz = shape3
-    inside = cr.i < nx
-    if not np.any(inside):
+    region = _solid_box(cr, shape3)
+    if region is None:
         return None
-    beyond = not np.all(inside)
+    inside = cr.i < shape3[0]
     i, j, k, w = cr.i[inside], cr.j[inside], cr.k[inside], cr.w[inside]
-    # Cells at or beyond the last crossing of their row have winding zero for a
-    # closed surface, so the box ends before max(i) -- unless some row leaves the
-    # body only past the grid's last centre: then the box runs to the grid's end.
-    i_lo, i_hi = int(i.min()), (nx if beyond else int(i.max()))
-    j_lo, j_hi = int(j.min()), int(j.max()) + 1
-    k_lo, k_hi = int(k.min()), int(k.max()) + 1
-    region = (
-        slice(max(i_lo - 1, 0), min(i_hi + 1, nx)),
-        slice(max(j_lo - 1, 0), min(j_hi + 1, ny)),
-        slice(max(k_lo - 1, 0), min(k_hi + 1, nz)),
-    )
     rshape = tuple(s.stop - s.start for s in region)
     d = np.zeros(rshape, dtype=np.int8)
     flat = ((i - region[0].start) * rshape[1] + (j - region[1].start)) * rshape[2] + (k - region[2].start)
@@ -457,14 +670,18 @@ def _warn_if_open(cr: _Crossings, shape3) -> int:
         return 0
     _, ny, nz = shape3
     balance = np.bincount(cr.j * nz + cr.k, weights=cr.w, minlength=ny * nz)
-    bad = int(np.count_nonzero(balance))
+    return _warn_open_rows(int(np.count_nonzero(balance)), stacklevel=4)
+
+
+def _warn_open_rows(bad: int, stacklevel: int = 3) -> int:
+    """Warn (IbprepWarning) when ``bad`` rows cross the surface unevenly; return ``bad``."""
     if bad:
         warnings.warn(
             f"the surface is not closed or not consistently oriented: {bad} rows of cell centres enter it "
             "more often than they leave it (or the reverse), so the tags along those rows are unreliable; "
             "give a watertight surface with outward (or uniformly inward) normals",
             IbprepWarning,
-            stacklevel=3,
+            stacklevel=stacklevel,
         )
     return bad
 
@@ -679,6 +896,7 @@ class Transition:
     _crossings: _Crossings | None = field(default=None, repr=False, compare=False)
     _grid: Grid | None = field(default=None, repr=False, compare=False)
     _interface: str | None = field(default=None, repr=False, compare=False)
+    _spent: bool = field(default=False, repr=False, compare=False)
 
     def __post_init__(self) -> None:
         if not isinstance(self.tags, np.ndarray) or self.tags.dtype != np.uint8:
@@ -691,8 +909,8 @@ class Transition:
             raise InputError(f"Transition.region needs {self.tags.ndim} slices, got {len(self.region)}")
 
 
-def _row_sorted(cr: _Crossings, shape3) -> _Crossings:
-    """The crossings ordered by row, then by position along the row."""
+def _row_sorted_numpy(cr: _Crossings, shape3) -> _Crossings:
+    """The crossings ordered by row, then by position along the row (numpy reference of :func:`_row_sorted`)."""
     if cr.row_sorted:
         return cr
     nx, ny, nz = shape3
@@ -701,13 +919,13 @@ def _row_sorted(cr: _Crossings, shape3) -> _Crossings:
 
 
 def _changed_runs(new: _Crossings, old: _Crossings, shape3):
-    """Runs of cells whose solid membership differs between two crossing sets.
+    """Runs of cells whose solid membership differs between two crossing sets (numpy reference of :func:`_changed_cells`).
 
     Returns ``(fresh_flat, covered_flat, any_solid_now)``: sorted (n,) int64 C-order
     flat indices over ``shape3``, and whether any centre is solid for ``new``.
     """
     nx, ny, nz = shape3
-    new, old = _row_sorted(new, shape3), _row_sorted(old, shape3)
+    new, old = _row_sorted_numpy(new, shape3), _row_sorted_numpy(old, shape3)
     row = np.concatenate([new.j * nz + new.k, old.j * nz + old.k])
     pos = np.concatenate([new.i, old.i])
     if row.size == 0:
@@ -745,6 +963,153 @@ def _changed_runs(new: _Crossings, old: _Crossings, shape3):
         i = pos[sel][rep] + (np.arange(total, dtype=np.int64) - np.repeat(np.cumsum(length) - length, length))
         out.append(np.sort(i * (ny * nz) + row[sel][rep]))
     return out[0], out[1], any_solid_now
+
+
+@numba.njit(**_JIT)
+def _row_sort_nb(i, j, k, w, nz):
+    """Crossings ordered by row ``j * nz + k``, then by ``i``: a counting sort over rows, an insertion sort within."""
+    n = i.size
+    si = np.empty(n, np.int64)
+    sj = np.empty(n, np.int64)
+    sk = np.empty(n, np.int64)
+    sw = np.empty(n, np.int8)
+    if n == 0:
+        return si, sj, sk, sw
+    lo = j[0] * nz + k[0]
+    hi = lo
+    for c in range(n):
+        r = j[c] * nz + k[c]
+        lo = min(lo, r)
+        hi = max(hi, r)
+    start = np.zeros(hi - lo + 2, np.int64)
+    for c in range(n):
+        start[j[c] * nz + k[c] - lo + 1] += 1
+    for r in range(1, start.size):
+        start[r] += start[r - 1]
+    fill = start[:-1].copy()
+    for c in range(n):
+        r = j[c] * nz + k[c] - lo
+        p = fill[r]
+        fill[r] += 1
+        si[p], sj[p], sk[p], sw[p] = i[c], j[c], k[c], w[c]
+    for r in range(start.size - 1):
+        for p in range(start[r] + 1, start[r + 1]):
+            q = p
+            while q > start[r] and si[q - 1] > si[q]:
+                si[q - 1], si[q] = si[q], si[q - 1]
+                sw[q - 1], sw[q] = sw[q], sw[q - 1]
+                q -= 1
+    return si, sj, sk, sw
+
+
+@numba.njit(**_JIT)
+def _changed_nb(ni, nj, nk, nw, oi, oj, ok, ow, nx, ny, nz):
+    """Walk two row-sorted crossing sets row by row; cells whose solid membership differs.
+
+    Returns ``(fresh, covered, any_solid_new, open_rows_new)``: unsorted C-order
+    flat indices, whether any centre is solid for the new set, and the number of
+    rows whose new crossings do not sum to zero (as :func:`_warn_if_open` counts them).
+    """
+    nn, no = ni.size, oi.size
+    nyz = ny * nz
+    # Runs of changed cells [start, stop) along a row; each event ends at most one run.
+    run_lo = np.empty(nn + no, np.int64)
+    run_hi = np.empty(nn + no, np.int64)
+    run_row = np.empty(nn + no, np.int64)
+    run_fresh = np.empty(nn + no, np.bool_)
+    runs = 0
+    any_solid = False
+    open_rows = 0
+    a = 0
+    b = 0
+    while a < nn or b < no:
+        ra = nj[a] * nz + nk[a] if a < nn else nyz
+        rb = oj[b] * nz + ok[b] if b < no else nyz
+        row = min(ra, rb)
+        a1 = a
+        total = 0
+        while a1 < nn and nj[a1] * nz + nk[a1] == row:
+            total += nw[a1]
+            a1 += 1
+        b1 = b
+        while b1 < no and oj[b1] * nz + ok[b1] == row:
+            b1 += 1
+        open_rows += total != 0
+        same = (a1 - a) == (b1 - b)
+        if same:
+            for c in range(a1 - a):
+                if ni[a + c] != oi[b + c] or nw[a + c] != ow[b + c]:
+                    same = False
+                    break
+        if same and any_solid:
+            a, b = a1, b1
+            continue
+        cn = 0
+        co = 0
+        while a < a1 or b < b1:
+            if b >= b1 or (a < a1 and ni[a] <= oi[b]):
+                p = ni[a]
+                cn += nw[a]
+                a += 1
+            else:
+                p = oi[b]
+                co += ow[b]
+                b += 1
+            q = nx
+            if a < a1:
+                q = min(q, ni[a])
+            if b < b1:
+                q = min(q, oi[b])
+            if q <= p:
+                continue
+            any_solid |= cn != 0
+            if (cn != 0) != (co != 0):
+                run_lo[runs] = p
+                run_hi[runs] = q
+                run_row[runs] = row
+                run_fresh[runs] = co != 0
+                runs += 1
+    n_fresh = 0
+    n_covered = 0
+    for r in range(runs):
+        if run_fresh[r]:
+            n_fresh += run_hi[r] - run_lo[r]
+        else:
+            n_covered += run_hi[r] - run_lo[r]
+    fresh = np.empty(n_fresh, np.int64)
+    covered = np.empty(n_covered, np.int64)
+    n_fresh = 0
+    n_covered = 0
+    for r in range(runs):
+        for c in range(run_lo[r], run_hi[r]):
+            if run_fresh[r]:
+                fresh[n_fresh] = c * nyz + run_row[r]
+                n_fresh += 1
+            else:
+                covered[n_covered] = c * nyz + run_row[r]
+                n_covered += 1
+    return fresh, covered, any_solid, open_rows
+
+
+def _row_sorted(cr: _Crossings, shape3) -> _Crossings:
+    """The crossings ordered by row, then by position along the row."""
+    if cr.row_sorted:
+        return cr
+    return _Crossings(*_row_sort_nb(cr.i, cr.j, cr.k, cr.w, shape3[2]), row_sorted=True)
+
+
+def _changed_cells(new: _Crossings, old: _Crossings, shape3):
+    """Cells whose solid membership differs between two crossing sets (compiled twin of :func:`_changed_runs`).
+
+    Returns ``(fresh_flat, covered_flat, any_solid_now)`` as :func:`_changed_runs`
+    does, and the number of rows crossing ``new`` unevenly (see :func:`_warn_if_open`).
+    """
+    nx, ny, nz = shape3
+    new, old = _row_sorted(new, shape3), _row_sorted(old, shape3)
+    fresh, covered, any_solid, open_rows = _changed_nb(new.i, new.j, new.k, new.w, old.i, old.j, old.k, old.w, nx, ny, nz)
+    fresh.sort()
+    covered.sort()
+    return fresh, covered, bool(any_solid), int(open_rows)
 
 
 def _neighbours(flat: np.ndarray, shape3) -> list[tuple[np.ndarray, np.ndarray]]:
@@ -801,26 +1166,112 @@ def _retag(flat_tags: np.ndarray, fresh: np.ndarray, covered: np.ndarray, shape3
     )
 
 
-def step_tags(previous, surface_now, grid: Grid, *, previous_surface=None, interface: str = "fluid-side") -> Transition:
+@numba.njit(**_JIT)
+def _set_interface_nb(flat_tags, cell, partner, plain, nx, ny, nz):
+    """Tag a non-partner cell INTERFACE if a face neighbour in the grid is a partner cell, else ``plain``."""
+    nyz = ny * nz
+    i = cell // nyz
+    rem = cell - i * nyz
+    j = rem // nz
+    k = rem - j * nz
+    found = (
+        (i > 0 and flat_tags[cell - nyz] == partner)
+        or (i < nx - 1 and flat_tags[cell + nyz] == partner)
+        or (j > 0 and flat_tags[cell - nz] == partner)
+        or (j < ny - 1 and flat_tags[cell + nz] == partner)
+        or (k > 0 and flat_tags[cell - 1] == partner)
+        or (k < nz - 1 and flat_tags[cell + 1] == partner)
+    )
+    flat_tags[cell] = 2 if found else plain  # 2 = CellTag.INTERFACE
+
+
+@numba.njit(**_JIT)
+def _retag_nb(flat_tags, joined, left, partner, plain, nx, ny, nz):
+    """Compiled twin of :func:`_retag`'s updates (same rules, one cell at a time)."""
+    nyz = ny * nz
+    steps = np.array([nyz, nz, 1])
+    sizes = np.array([nx, ny, nz])
+    for cell in joined:
+        rem = cell
+        for a in range(3):
+            c = rem // steps[a]
+            rem -= c * steps[a]
+            for d in (-1, 1):
+                if 0 <= c + d < sizes[a]:
+                    nb = cell + d * steps[a]
+                    if flat_tags[nb] != partner:
+                        flat_tags[nb] = 2
+    for cell in left:
+        _set_interface_nb(flat_tags, cell, partner, plain, nx, ny, nz)
+        rem = cell
+        for a in range(3):
+            c = rem // steps[a]
+            rem -= c * steps[a]
+            for d in (-1, 1):
+                if 0 <= c + d < sizes[a]:
+                    nb = cell + d * steps[a]
+                    if flat_tags[nb] == 2:
+                        _set_interface_nb(flat_tags, nb, partner, plain, nx, ny, nz)
+
+
+def _retag_compiled(flat_tags: np.ndarray, fresh: np.ndarray, covered: np.ndarray, shape3, interface: str) -> tuple[slice, ...]:
+    """:func:`_retag` (same arguments, same updates in place, same returned box) on the compiled kernel."""
+    if interface == "fluid-side":
+        joined, left, partner, plain = covered, fresh, CellTag.SOLID, CellTag.FLUID
+    else:
+        joined, left, partner, plain = fresh, covered, CellTag.FLUID, CellTag.SOLID
+    nx, ny, nz = shape3
+    _retag_nb(flat_tags, joined, left, np.uint8(partner), np.uint8(plain), nx, ny, nz)
+    ends = [a[[0, -1]] for a in (fresh, covered) if a.size]  # sorted: first and last cell only bound i
+    i_lo = min(int(e[0]) for e in ends) // (ny * nz)
+    i_hi = max(int(e[1]) for e in ends) // (ny * nz)
+    rem = np.concatenate([fresh, covered]) % (ny * nz)
+    j, k = np.divmod(rem, nz)
+    return (
+        slice(max(i_lo - 1, 0), min(i_hi + 2, nx)),
+        slice(max(int(j.min()) - 1, 0), min(int(j.max()) + 2, ny)),
+        slice(max(int(k.min()) - 1, 0), min(int(k.max()) + 2, nz)),
+    )
+
+
+def step_tags(
+    previous,
+    surface_now,
+    grid: Grid,
+    *,
+    previous_surface=None,
+    interface: str = "fluid-side",
+    overwrite_previous: bool = False,
+) -> Transition:
     """Tags at a new pose from the previous step's tags, and the fresh and covered cells.
 
     Only the cells between the previous and the current surface along each row of
     centres are re-tagged (plus their face neighbours for the interface layer), so
-    a step costs a copy of the tag array and work proportional to the surface and
-    to the cells it swept, rather than to the grid.
+    a step costs work proportional to the surface and to the cells it swept, plus
+    a new tag array into which the index box of the new pose's solid cells is
+    copied from the previous tags (no new array with ``overwrite_previous``).
 
     Parameters
     ----------
     previous : Transition or grid.shape uint8 array
         The previous step: a :class:`Transition` from the last call (its crossings
         are reused), or the tags of ``previous_surface`` on ``grid`` with the same
-        ``interface`` option, as returned by :func:`classify`. Not modified.
+        ``interface`` option, as returned by :func:`classify`. Not modified unless
+        ``overwrite_previous``.
     surface_now : closed surface — the body at the new pose, world frame (as for
         :func:`classify`).
     grid : Grid
     previous_surface : closed surface, optional — the body at the previous pose,
         world frame; required when ``previous`` is a tag array.
     interface : {"fluid-side", "solid-side"}
+    overwrite_previous : bool, default False
+        Update the previous tag array (``previous.tags``, or ``previous`` itself)
+        in place and return it as the new ``tags`` instead of allocating a new
+        array: for a time loop that keeps only the latest step. The previous
+        array then holds the new pose's tags; a Transition passed this way is
+        marked spent and a further ``step_tags`` call refuses it (pass the
+        returned Transition instead). The array must be writeable and
+        C-contiguous.
 
     Returns
     -------
@@ -832,17 +1283,33 @@ def step_tags(previous, surface_now, grid: Grid, *, previous_surface=None, inter
     InputError
         Bad ``interface``; a malformed surface; previous tags of the wrong shape or
         dtype; a tag array without ``previous_surface``; a Transition made for
-        another grid or interface option.
+        another grid or interface option, or already spent by
+        ``overwrite_previous``; ``overwrite_previous`` with a read-only or
+        non-contiguous array.
 
     Warns
     -----
     IbprepWarning
-        No cell centre is solid at the new pose (``Transition.body_outside``).
+        No cell centre is solid at the new pose (``Transition.body_outside``); or
+        the surface at the new pose is not closed (as for :func:`classify`).
+
+    Notes
+    -----
+    A tagging leaves every cell outside the index box of its solid cells (plus a
+    one-cell margin for the interface layer) fluid. The new array is therefore
+    zero outside the new pose's box, and the previous tags are read only inside
+    it and next to the changed cells; tags outside the previous pose's box are
+    taken as fluid, which is what :func:`classify` and earlier steps produce.
     """
     interface = _check_interface(interface)
     grid = _check_grid(grid)
     shape3 = grid.shape if grid.ndim == 3 else (*grid.shape, 1)
     axes = _axes3(grid)
+    if isinstance(previous, Transition) and previous._spent:
+        raise InputError(
+            "this Transition's tags were overwritten by step_tags(..., overwrite_previous=True); "
+            "pass the Transition that call returned"
+        )
     if isinstance(previous, Transition) and previous._crossings is not None:
         if previous._grid != grid or previous._interface != interface:
             raise InputError(
@@ -852,33 +1319,54 @@ def step_tags(previous, surface_now, grid: Grid, *, previous_surface=None, inter
         prev = previous.tags
         old = previous._crossings
     else:
-        prev = np.asarray(previous.tags if isinstance(previous, Transition) else previous)
-        if prev.shape != grid.shape or prev.dtype != np.uint8:
+        prev = previous.tags if isinstance(previous, Transition) else previous
+        if not overwrite_previous:
+            prev = np.asarray(prev)
+        if not isinstance(prev, np.ndarray) or prev.shape != grid.shape or prev.dtype != np.uint8:
             raise InputError(
-                f"previous_tags must be a uint8 array of the grid's shape {grid.shape}, got {prev.dtype} of shape "
-                f"{prev.shape}; pass the tags returned by classify() or step_tags() for this grid"
+                f"previous_tags must be a uint8 array of the grid's shape {grid.shape}, got "
+                f"{getattr(prev, 'dtype', type(prev).__name__)} of shape {getattr(prev, 'shape', '?')}; "
+                "pass the tags returned by classify() or step_tags() for this grid"
             )
         if previous_surface is None:
             raise InputError("previous_surface is required when previous is a tag array; pass the body at the previous pose")
         v_old, f_old = as_triangles(previous_surface)
         old = _crossings(v_old, f_old, *axes)
+    if overwrite_previous and not (prev.flags.writeable and prev.flags.c_contiguous):
+        raise InputError(
+            "overwrite_previous=True needs a writeable, C-contiguous previous tag array; "
+            "pass a copy (np.ascontiguousarray) or leave overwrite_previous False"
+        )
     v_now, f_now = as_triangles(surface_now)
     new = _row_sorted(_crossings(v_now, f_now, *axes), shape3)  # kept sorted for the next step
-    _warn_if_open(new, shape3)
-    fresh, covered, any_solid = _changed_runs(new, old, shape3)
-    tags = prev.copy()
+    fresh, covered, any_solid, open_rows = _changed_cells(new, old, shape3)
+    _warn_open_rows(open_rows)
+    if overwrite_previous:
+        tags = prev.reshape(shape3)
+        if isinstance(previous, Transition):
+            object.__setattr__(previous, "_spent", True)
+    else:
+        # A tagging leaves every cell outside the box of its solid cells (plus the
+        # interface margin) fluid, so the new tags are zeros (FLUID) outside the new
+        # pose's box, and only that box is copied from the previous tags. Cells the
+        # body left outside it are already at their final value; the updates below
+        # (fresh cells set fluid, their neighbours re-checked) agree with that.
+        tags = np.zeros(shape3, dtype=np.uint8)
+        box = _solid_box(new, shape3)
+        if box is not None:
+            tags[box] = prev.reshape(shape3)[box]
     flat_tags = tags.reshape(-1)
     flat_tags[covered] = CellTag.SOLID
     flat_tags[fresh] = CellTag.FLUID
     if fresh.size or covered.size:
-        region3 = _retag(flat_tags, fresh, covered, shape3, interface)
+        region3 = _retag_compiled(flat_tags, fresh, covered, shape3, interface)
     else:
         region3 = (slice(0, 0),) * 3
     outside = not any_solid
     if outside:
         _warn_if_empty(False, v_now, grid)
     return Transition(
-        tags=tags,
+        tags=tags.reshape(grid.shape),
         fresh=fresh,
         covered=covered,
         region=region3[: grid.ndim],

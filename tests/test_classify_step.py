@@ -1,0 +1,267 @@
+"""Tests of the compiled crossing enumeration and incremental stepping of ibprep.classify.
+
+The compiled kernels are held to their numpy twins in the same module (the
+project's own reference paths); the stepping results are held to two full
+taggings and their set differences (common practice, no single source).
+"""
+
+import warnings
+
+import numpy as np
+import pytest
+from conftest import apply_pose, box_mesh, rigid_pose, sphere_mesh, torus_mesh, wing_mesh
+
+from ibprep import CellTag, Grid, IbprepWarning, InputError
+from ibprep.classify import (
+    _axes3,
+    _changed_cells,
+    _changed_runs,
+    _Crossings,
+    _crossings,
+    _crossings_nb,
+    _crossings_numpy,
+    _row_sorted,
+    _row_sorted_numpy,
+    classify,
+    step_tags,
+)
+
+GRID = Grid(lower=(-1.1, -1.0, -0.9), upper=(1.0, 1.125, 1.2), spacing=1 / 40)
+
+
+def _key(cr):
+    """Crossings as a (4, c) array in one canonical order (the enumeration order may differ)."""
+    order = np.lexsort((cr.w, cr.i, cr.k, cr.j))
+    return np.stack([cr.i[order], cr.j[order], cr.k[order], cr.w[order].astype(np.int64)])
+
+
+def _mesh(name, seed):
+    rng = np.random.default_rng(seed)
+    base = {
+        "sphere": lambda: sphere_mesh(0.7, 3),
+        "torus": lambda: torus_mesh(0.6, 0.2, 32, 12),
+        "wing": lambda: wing_mesh(40, 8, chord=1.2, span=1.4, z0=-0.7),
+    }[name]()
+    return apply_pose(rigid_pose(rng, 0.1), base)
+
+
+def _snapped(mesh, h):
+    """Vertices rounded to multiples of h / 2: rows through vertices and along edges (exact predicates needed)."""
+    v, f = mesh
+    return np.round(v / (h / 2)) * (h / 2), f
+
+
+def _members(tags, interface):
+    return tags == CellTag.SOLID if interface == "fluid-side" else tags != CellTag.FLUID
+
+
+# ---------------------------------------------------------------------------- compiled twins
+@pytest.mark.parametrize("seed", [0, 1])
+@pytest.mark.parametrize("name", ["sphere", "torus", "wing"])
+def test_compiled_crossings_equal_the_numpy_path(name, seed):
+    axes = _axes3(GRID)
+    mesh = _mesh(name, seed)
+    got, ref = _crossings(*mesh, *axes), _crossings_numpy(*mesh, *axes)
+    assert ref.i.size > 100
+    np.testing.assert_array_equal(_key(got), _key(ref))
+
+
+@pytest.mark.parametrize("name", ["sphere", "torus", "box"])
+def test_compiled_crossings_hand_exact_cases_to_the_numpy_path(name):
+    # Snapped vertices and an axis-aligned box put lattice points exactly on edges
+    # and vertices in projection; the compiled filter must hand those triangles to
+    # the exact numpy path, and the union must equal the numpy path.
+    h = 1 / 16
+    grid = Grid(lower=(-1 - h / 2,) * 3, upper=(1 - h / 2,) * 3, spacing=h)
+    axes = _axes3(grid)
+    if name == "box":
+        mesh = box_mesh((-0.5, -0.5, -0.5), (0.5, 0.25, 0.375))
+    else:
+        mesh = _snapped(sphere_mesh(0.8, 2) if name == "sphere" else torus_mesh(0.55, 0.25, 24, 12), h)
+    v, f = mesh
+    vt, ft = np.ascontiguousarray(v.T), np.ascontiguousarray(f.T)
+    exact = _crossings_nb(vt[0], vt[1], vt[2], ft[0], ft[1], ft[2], *axes)[5]
+    assert exact.size > 0  # the fallback is exercised
+    np.testing.assert_array_equal(_key(_crossings(*mesh, *axes)), _key(_crossings_numpy(*mesh, *axes)))
+
+
+def test_compiled_crossings_on_a_2d_grid_equal_the_numpy_path():
+    grid = Grid(lower=(0, 0), upper=(1, 1), spacing=1 / 50)
+    th = np.linspace(0, 2 * np.pi, 41)[:-1]
+    loop = np.column_stack([0.5 + 0.3 * np.cos(th), 0.45 + 0.2 * np.sin(th)])
+    from ibprep.triangles import as_triangles
+
+    v, f = as_triangles(loop)
+    axes = _axes3(grid)
+    ref = _crossings_numpy(v, f, *axes)
+    assert ref.i.size > 10
+    np.testing.assert_array_equal(_key(_crossings(v, f, *axes)), _key(ref))
+
+
+def _random_crossings(rng, shape3, n):
+    """Arbitrary crossing sets, rows left open and crossings at the grid's end included."""
+    nx, ny, nz = shape3
+    return _Crossings(
+        rng.integers(0, nx + 1, n), rng.integers(0, ny, n), rng.integers(0, nz, n), rng.choice(np.array([-1, 1], np.int8), n)
+    )
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_row_sort_and_changed_cells_equal_the_numpy_paths(seed):
+    rng = np.random.default_rng(seed)
+    shape3 = (9, 5, 4) if seed % 2 else (30, 3, 1)
+    new, old = _random_crossings(rng, shape3, 60), _random_crossings(rng, shape3, 50)
+    s, r = _row_sorted(new, shape3), _row_sorted_numpy(new, shape3)
+    nz = shape3[2]
+    np.testing.assert_array_equal(np.stack([s.j * nz + s.k, s.i]), np.stack([r.j * nz + r.k, r.i]))
+    np.testing.assert_array_equal(_key(s), _key(r))
+    fresh, covered, any_solid, open_rows = _changed_cells(new, old, shape3)
+    ref_fresh, ref_covered, ref_any = _changed_runs(new, old, shape3)
+    np.testing.assert_array_equal(fresh, ref_fresh)
+    np.testing.assert_array_equal(covered, ref_covered)
+    assert any_solid == ref_any
+    balance = np.bincount(new.j * nz + new.k, weights=new.w, minlength=shape3[1] * nz)
+    assert open_rows == np.count_nonzero(balance) > 0
+    assert fresh.size + covered.size > 0
+
+
+# ---------------------------------------------------------------------------- stepping
+def _pose_chain(rng, n, spacing):
+    """Poses one small step apart: a slow rotation about a random axis and a drift of about h / 3 per step."""
+    axis = rng.normal(size=3)
+    axis /= np.linalg.norm(axis)
+    drift = rng.normal(size=3) * spacing / 3
+    out = []
+    for s in range(n):
+        ang = 0.01 * s
+        K = np.array([[0, -axis[2], axis[1]], [axis[2], 0, -axis[0]], [-axis[1], axis[0], 0]])
+        T = np.eye(4)
+        T[:3, :3] = np.eye(3) + np.sin(ang) * K + (1 - np.cos(ang)) * K @ K
+        T[:3, 3] = drift * s
+        out.append(T)
+    return out
+
+
+def _several_bodies():
+    a = sphere_mesh(0.35, 3, centre=(-0.45, 0.1, 0.0))
+    b = torus_mesh(0.3, 0.1, 24, 10)
+    b = (b[0] + [0.5, -0.2, 0.3], b[1])
+    c = box_mesh((0.1, 0.35, -0.6), (0.7, 0.8, -0.25))
+    verts = [a[0], b[0], c[0]]
+    offsets = np.cumsum([0] + [len(v) for v in verts[:-1]])
+    return np.vstack(verts), np.vstack([f + o for f, o in zip((a[1], b[1], c[1]), offsets)])
+
+
+@pytest.mark.parametrize("overwrite", [False, True])
+@pytest.mark.parametrize("interface", ["fluid-side", "solid-side"])
+def test_step_chain_of_several_bodies_equals_full_taggings(interface, overwrite):
+    rng = np.random.default_rng(11)
+    grid = Grid(lower=(-1, -1, -1), upper=(1, 1, 1), spacing=1 / 20)
+    bodies = _several_bodies()
+    poses = [apply_pose(T, bodies) for T in _pose_chain(rng, 6, grid.spacing)]
+    previous = classify(poses[0], grid, interface=interface)
+    tr = step_tags(previous, poses[1], grid, previous_surface=poses[0], interface=interface)
+    for mesh in poses[2:]:
+        before = tr.tags.copy()
+        nxt = step_tags(tr, mesh, grid, interface=interface, overwrite_previous=overwrite)
+        full = classify(mesh, grid, interface=interface)
+        np.testing.assert_array_equal(nxt.tags, full)
+        np.testing.assert_array_equal(nxt.fresh, np.flatnonzero(_members(before, interface) & ~_members(full, interface)))
+        np.testing.assert_array_equal(nxt.covered, np.flatnonzero(_members(full, interface) & ~_members(before, interface)))
+        assert nxt.fresh.size + nxt.covered.size > 0
+        if overwrite:
+            assert nxt.tags is tr.tags or np.shares_memory(nxt.tags, tr.tags)
+        else:
+            np.testing.assert_array_equal(tr.tags, before)  # not modified
+        tr = nxt
+
+
+@pytest.mark.parametrize("interface", ["fluid-side", "solid-side"])
+def test_step_bodies_leaving_and_reentering_the_grid(interface):
+    # The body crosses the grid's x = upper face, leaves it wholly, and comes back.
+    grid = Grid(lower=(0, 0, 0), upper=(1, 1, 1), spacing=1 / 24)
+    base = sphere_mesh(0.2, 3, centre=(0.7, 0.5, 0.45))
+    shifts = [0.0, 0.15, 0.3, 0.6, 0.25, 0.05]
+    meshes = [(base[0] + [s, 0.01 * n, 0.0], base[1]) for n, s in enumerate(shifts)]
+    tr = classify(meshes[0], grid, interface=interface)
+    prev_mesh = meshes[0]
+    left_grid = False
+    for mesh in meshes[1:]:
+        before = tr.tags.copy() if hasattr(tr, "tags") else tr.copy()
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", IbprepWarning)
+            tr = step_tags(tr, mesh, grid, previous_surface=prev_mesh, interface=interface)
+            full = classify(mesh, grid, interface=interface)
+        np.testing.assert_array_equal(tr.tags, full)
+        np.testing.assert_array_equal(tr.fresh, np.flatnonzero(_members(before, interface) & ~_members(full, interface)))
+        np.testing.assert_array_equal(tr.covered, np.flatnonzero(_members(full, interface) & ~_members(before, interface)))
+        assert tr.body_outside == (not full.any())
+        left_grid |= tr.body_outside
+        prev_mesh = mesh
+    assert left_grid
+
+
+def test_step_2d_chain_equals_full_taggings():
+    grid = Grid(lower=(0, 0), upper=(1, 1), spacing=1 / 64)
+    th = np.linspace(0, 2 * np.pi, 33)[:-1]
+    loop = np.column_stack([0.45 + 0.25 * np.cos(th), 0.5 + 0.1 * np.sin(th)])
+    prev = loop
+    tr = classify(loop, grid)
+    for n in range(1, 5):
+        c, s_ = np.cos(0.03 * n), np.sin(0.03 * n)
+        now = (loop - [0.45, 0.5]) @ np.array([[c, s_], [-s_, c]]) + [0.45 + 0.004 * n, 0.5]
+        before = tr.tags.copy() if hasattr(tr, "tags") else tr.copy()
+        tr = step_tags(tr, now, grid, previous_surface=prev)
+        full = classify(now, grid)
+        np.testing.assert_array_equal(tr.tags, full)
+        np.testing.assert_array_equal(tr.covered, np.flatnonzero(_members(full, "fluid-side") & ~_members(before, "fluid-side")))
+        prev = now
+
+
+def test_overwrite_previous_spends_the_transition_and_checks_the_array():
+    grid = Grid(lower=(-1, -1, -1), upper=(1, 1, 1), spacing=1 / 16)
+    a = sphere_mesh(0.5, 2)
+    b = (a[0] + [0.02, 0.0, 0.01], a[1])
+    c = (a[0] + [0.04, 0.01, 0.01], a[1])
+    tags = classify(a, grid)
+    tr = step_tags(tags, b, grid, previous_surface=a, overwrite_previous=True)
+    assert np.shares_memory(tr.tags, tags)  # the caller's array was updated in place
+    np.testing.assert_array_equal(tags, classify(b, grid))
+    nxt = step_tags(tr, c, grid, overwrite_previous=True)
+    np.testing.assert_array_equal(nxt.tags, classify(c, grid))
+    with pytest.raises(InputError, match="overwritten by step_tags"):
+        step_tags(tr, a, grid)
+    frozen = classify(a, grid)
+    frozen.flags.writeable = False
+    with pytest.raises(InputError, match="writeable, C-contiguous"):
+        step_tags(frozen, b, grid, previous_surface=a, overwrite_previous=True)
+    strided = np.asfortranarray(classify(a, grid))
+    with pytest.raises(InputError, match="writeable, C-contiguous"):
+        step_tags(strided, b, grid, previous_surface=a, overwrite_previous=True)
+
+
+def test_step_of_an_open_surface_warns_like_classify():
+    grid = Grid(lower=(-1, -1, -1), upper=(1, 1, 1), spacing=1 / 16)
+    v, f = sphere_mesh(0.5, 2)
+    tags = classify((v, f), grid)
+    with pytest.warns(IbprepWarning, match="not closed"):
+        step_tags(tags, (v + 0.01, f[1:]), grid, previous_surface=(v, f))
+
+
+@pytest.mark.parametrize("interface", ["fluid-side", "solid-side"])
+def test_compiled_retag_equals_the_numpy_path(interface):
+    from ibprep.classify import _retag, _retag_compiled
+
+    grid = Grid(lower=(-1, -1, -1), upper=(1, 1, 1), spacing=1 / 20)
+    a = _mesh("torus", 3)
+    b = (a[0] + [0.03, -0.02, 0.04], a[1])
+    axes, shape3 = _axes3(grid), grid.shape
+    fresh, covered, _, _ = _changed_cells(_crossings(*b, *axes), _crossings(*a, *axes), shape3)
+    assert fresh.size and covered.size
+    start = classify(a, grid, interface=interface).reshape(-1)
+    start[covered] = CellTag.SOLID
+    start[fresh] = CellTag.FLUID
+    ref, got = start.copy(), start.copy()
+    assert _retag_compiled(got, fresh, covered, shape3, interface) == _retag(ref, fresh, covered, shape3, interface)
+    np.testing.assert_array_equal(got, ref)
+    np.testing.assert_array_equal(got.reshape(shape3), classify(b, grid, interface=interface))
