@@ -6,6 +6,10 @@ numpy method it stands in for, so a call site switches with a one-line change:
 * :func:`segments_cross_fan` — :meth:`ibprep.proximity.TriangleIndex.segments_cross_fan`
 * :func:`closest` — :meth:`ibprep.proximity.TriangleIndex.closest`
 * :func:`wls_value_weights` — ``ibprep.stencils._wls_value_weights``
+* :func:`stencil_fits` — ``ibprep.stencils._fit_arrays``: candidates,
+  visibility (the fan test's row function) and the WLS solve of every stencil
+  in one pass, which the builder uses; the three above remain for the array
+  pipeline and as tested building blocks.
 
 The geometric kernels walk the index's compressed-sparse-row buckets one
 query at a time (no pair arrays), apply the same screens with the same

@@ -32,13 +32,10 @@ Choices (documented defaults)
 * Visibility: the segment from the fitting origin to the neighbour centre must
   not meet the surface (fluid-side: from the cell centre; solid-side: from the
   boundary point nudged 1e-6 h into the fluid; image point: from the image
-  point). Per stencil the triangle pieces near the origin are gathered once;
-  dense (stencil, candidate, piece) arrays give each segment's crossing
-  parameter with each piece's plane, and only segments that meet a plane
-  inside the piece's bounding sphere reach the exact Möller–Trumbore test. (A 1-Lipschitz screen, d0 + dj > L, with lower
-  bounds on the candidates' distances was measured slower than these dense
-  screens and is not used; :meth:`TriangleIndex.distance_lower_bound` keeps it
-  available.)
+  point). Per stencil the triangle pieces near the origin are gathered once
+  (and again for each grown round); a box screen, the side of each piece's
+  plane and its bounding sphere pass only the segments that may cross it to
+  the exact Möller–Trumbore test.
 * The fit is made in coordinates centred on the fitting point and divided by
   the spacing (Mirzaei, Schaback & Dehghan 2012); weights are functions of
   that scaled distance ρ with support S = r + 1 cells (r the stencil's final
@@ -47,10 +44,13 @@ Choices (documented defaults)
   ``"wendland"`` (1 - ρ/S)⁴ (4ρ/S + 1) (Wendland 1995, C²). The boundary
   datum is one more row of the fit, weighted the same way at its distance.
 * The least-squares problem is solved through a Householder QR of the weighted
-  design matrix, batched over all stencils (``numpy.linalg.qr`` on (n, k, m)
-  stacks); the condition number is the ratio of its extreme singular values,
-  taken from the eigenvalues of R^T R (accurate to a few digits up to ~1e6;
-  above ~1e7 it is reported as inf).
+  design matrix, one small matrix per stencil; the condition number is the
+  ratio of its extreme singular values, taken from the eigenvalues of R^T R
+  (accurate to a few digits up to ~1e6; above ~1e7 it is reported as inf).
+* Candidates, visibility and the fit run as one compiled pass over the cells
+  (:func:`ibprep.kernels.stencil_fits`); ``_fit_arrays`` does the same with
+  batched numpy arrays and LAPACK (``numpy.linalg.qr`` on (n, k, m) stacks)
+  and is the reference the compiled pass is tested against.
 * 2-D grids: points and normals are (n, 3) with z = 0; single-layer 3-D grids
   (``grid.is_planar``) fit in the x–y plane with the 6-term basis and keep the
   cells' z.
