@@ -23,6 +23,7 @@ returns a few figures only.
 from __future__ import annotations
 
 import math
+import os
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -37,6 +38,8 @@ __all__ = ["StepResult", "SweepTask", "run_chunk", "sweep", "chunk_instants"]
 
 # How many failed-stencil locations each step keeps for the report.
 _KEEP_BAD = 20
+# Longest run of consecutive instants in one default chunk.
+_CHUNK_STEPS = 25
 
 
 @dataclass(frozen=True)
@@ -224,8 +227,9 @@ def sweep(surface, motion, grid: Grid, instants, dt: float, *, bc: str = "dirich
     scheduler : str, optional — address of a Dask distributed scheduler
         (``tcp://host:8786``), or ``"local"`` to start a local Dask cluster of
         ``workers`` single-threaded processes; needs ``pip install "ibprep[dask]"``.
-    chunks : int, optional — number of chunks (default: the number of workers, or
-        two per Dask worker).
+    chunks : int, optional — number of chunks of consecutive instants (default: the
+        number of workers, or two per Dask worker, and more where needed so that no
+        chunk holds more than 25 instants).
     progress : callable, optional — called with (done, total) instants as chunks finish.
 
     Returns
@@ -256,7 +260,15 @@ def sweep(surface, motion, grid: Grid, instants, dt: float, *, bc: str = "dirich
     limits = limits if limits is not None else StencilLimits()
     if scheduler is not None and not isinstance(scheduler, str):
         raise InputError(f"scheduler must be an address like tcp://host:8786 or 'local', got {scheduler!r}")
-    n_chunks = chunks or (workers if scheduler is None else 2 * max(1, workers))
+    if chunks is None:
+        # At least one chunk per worker (two per Dask worker), and no chunk longer than
+        # _CHUNK_STEPS instants, so progress is reported often, a killed run stops soon and
+        # uneven chunks balance out. Each chunk starts with one full tagging (cheap beside
+        # its stencils); the results do not depend on the chunking.
+        per_worker = workers if scheduler is None else 2 * max(1, workers)
+        n_chunks = max(per_worker, math.ceil(len(instants) / _CHUNK_STEPS))
+    else:
+        n_chunks = chunks
     parts = chunk_instants(instants, n_chunks)
     tasks = [SweepTask(bodies, grid, float(dt), times, first, bc, interface, limits) for first, times in parts]
     total = len(instants)
@@ -290,7 +302,8 @@ def _run_processes(tasks, workers: int, done) -> None:
     import multiprocessing as mp
 
     ctx = mp.get_context("spawn")
-    with cf.ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as pool:
+    with cf.ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_watch_parent,
+                                initargs=(os.getpid(),)) as pool:
         futures = {pool.submit(run_chunk, t): t for t in tasks}
         for fut in cf.as_completed(futures):
             try:
@@ -301,6 +314,23 @@ def _run_processes(tasks, workers: int, done) -> None:
                 for other in futures:
                     other.cancel()
                 raise _failure(futures[fut], exc) from exc
+
+
+def _watch_parent(parent: int) -> None:
+    """In a pool worker: exit as soon as the process that started it is gone.
+
+    A run killed by a batch system's time limit (SIGTERM or SIGKILL to the
+    parent) must not leave workers computing their chunks for minutes.
+    """
+    import threading
+    import time
+
+    def watch():
+        while os.getppid() == parent:
+            time.sleep(1.0)
+        os._exit(1)
+
+    threading.Thread(target=watch, name="ibprep-parent-watch", daemon=True).start()
 
 
 def _run_dask(tasks, scheduler: str, workers: int, done) -> None:

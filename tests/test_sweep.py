@@ -120,3 +120,58 @@ def test_bad_engine_options_are_input_errors():
         sweep(case.surface, case.motion, case.grid.finest, [], 0.002)
     with pytest.raises(InputError, match="positive number of seconds"):
         sweep(case.surface, case.motion, case.grid.finest, [0.0], -1.0)
+
+
+def test_default_chunks_report_progress_every_few_instants(monkeypatch):
+    # A long serial sweep reports progress as chunks of at most _CHUNK_STEPS instants finish,
+    # not once at the end; the steps are the same as in one chunk.
+    import importlib
+
+    sw = importlib.import_module("ibprep.sweep")  # the module (ibprep.sweep is also the function)
+    monkeypatch.setattr(sw, "_CHUNK_STEPS", 4)
+    case = parse_case(SMALL_CASE)
+    t = np.arange(10) * case.time.step
+    seen = []
+    steps = sweep(case.surface, case.motion, case.grid.finest, t, case.time.step, progress=lambda d, n: seen.append((d, n)))
+    assert [d for d, _ in seen] == [3, 7, 10] and {n for _, n in seen} == {10}
+    assert steps == sweep(case.surface, case.motion, case.grid.finest, t, case.time.step, chunks=1)
+
+
+_ORPHAN_SCRIPT = r"""
+import concurrent.futures as cf, multiprocessing as mp, os, sys, time
+from ibprep.sweep import _watch_parent
+
+if __name__ == "__main__":
+    with cf.ProcessPoolExecutor(1, mp_context=mp.get_context("spawn"), initializer=_watch_parent,
+                                initargs=(os.getpid(),)) as pool:
+        print(pool.submit(os.getpid).result(), flush=True)
+        pool.submit(time.sleep, 120)
+        time.sleep(120)
+"""
+
+
+@pytest.mark.slow
+def test_pool_workers_exit_when_the_run_is_killed(tmp_path):
+    # A batch system's time limit kills the parent: its workers must not compute on for minutes.
+    import os
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    script = tmp_path / "parent.py"
+    script.write_text(_ORPHAN_SCRIPT)
+    parent = subprocess.Popen([sys.executable, str(script)], stdout=subprocess.PIPE, text=True)
+    worker = int(parent.stdout.readline())
+    os.kill(parent.pid, signal.SIGKILL)
+    parent.wait()
+    deadline = time.monotonic() + 30.0
+    while time.monotonic() < deadline:
+        try:
+            os.kill(worker, 0)
+        except ProcessLookupError:
+            break
+        time.sleep(0.2)
+    else:
+        os.kill(worker, signal.SIGKILL)
+        pytest.fail("the pool worker outlived its killed parent by 30 s")
