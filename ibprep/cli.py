@@ -220,8 +220,9 @@ def _run_size(args) -> int:
     print(f"  -> finest spacing {ng.finest_spacing:.4g} m (c/{c / ng.finest_spacing:.0f}), set by the {rule} rule")
     print("")
     print("swept envelope over one cycle (m):")
-    print(f"  lower {tuple(round(float(x), 5) for x in env.lower)}")
-    print(f"  upper {tuple(round(float(x), 5) for x in env.upper)}")
+    nd = case.grid.base.ndim  # a 2-D case's body is a prism: its depth is not part of the answer
+    print(f"  lower {tuple(round(float(x), 5) for x in env.lower[:nd])}")
+    print(f"  upper {tuple(round(float(x), 5) for x in env.upper[:nd])}")
     print("")
     print(f"  {'level':>5}  {'spacing (m)':>12}  {'cells':>14}  {'leaf cells':>14}  box")
     leaf = ng.leaf_cells_per_level()

@@ -97,6 +97,20 @@ def test_size_prints_a_pasteable_block(tmp_path, capsys):
     assert len(boxes) >= 1 and all(len(b["lower"]) == 3 for b in boxes)
 
 
+def test_size_of_a_2d_case_speaks_in_two_components(tmp_path, capsys):
+    from cases import SMALL_CASE_2D
+
+    assert main(["size", str(_case(tmp_path, SMALL_CASE_2D))]) == 0
+    out = capsys.readouterr().out
+    env = out[out.index("swept envelope"):].splitlines()[1:3]
+    # "  lower (x, y)": two numbers, no depth of the extruded prism.
+    assert all(line.count(",") == 1 for line in env), env
+    import tomllib
+
+    boxes = tomllib.loads(out[out.index("\n[[grid.refine]]") + 1:])["grid"]["refine"]
+    assert all(len(b["lower"]) == 2 and len(b["upper"]) == 2 for b in boxes)
+
+
 def test_export_writes_files_that_read_back(tmp_path, capsys):
     import meshio
     import numpy as np
