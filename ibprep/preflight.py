@@ -204,15 +204,17 @@ def _body_surface_checks(case: Case, mesh, h_body: float, figures: dict) -> list
                          "orient every face consistently, normals pointing out of the body"))
     if not rep.closed:
         return out
-    thin = thin_regions(mesh, 2.0 * h_body, spacing=h_body)
-    frac = float(thin.area / rep.area) if rep.area > 0 else 0.0
+    planar = case.grid.base.ndim == 2
+    # A 2-D body is a prism: only its section matters, so only a band of its walls about z = 0.
+    thin = thin_regions(mesh, 2.0 * h_body, spacing=h_body, planar_band=2.0 * h_body if planar else None)
+    frac = float(thin.area / thin.examined_area) if thin.examined_area > 0 else 0.0
     where = ""
     if thin.count:
         k = int(np.argmin(thin.thickness))
-        where = f"; thinnest {thin.min_thickness / h_body:.2g} cells near {_fmt_point(thin.points[k])}"
+        where = f"; thinnest {thin.min_thickness / h_body:.2g} cells near {_fmt_point(thin.points[k][:2] if planar else thin.points[k])}"
         figures["thin_area_fraction"] = frac
     pct = f"{100 * frac:.0f}" if frac >= 0.1 else f"{100 * frac:.2g}"
-    msg = f"{pct} % of the surface is thinner than two cells ({2 * h_body:.3g} m){where}"
+    msg = f"{pct} % of the {'section perimeter' if planar else 'surface'} is thinner than two cells ({2 * h_body:.3g} m){where}"
     if frac > case.checks.thin_fraction_max:
         out.append(Check("surface.thin", "fail", frac, case.checks.thin_fraction_max, "area fraction", msg,
                          "refine the grid near the body or thicken the body: thin parts vanish or leak on the grid"))

@@ -98,6 +98,8 @@ stokes_cells_min = 1
 upstream_chords = 1
 downstream_chords = 1
 lateral_chords = 0.5
+# 60 cells per chord: the sharp trailing edge's last 12 % of the perimeter is under two cells.
+thin_fraction_max = 0.2
 """
 
 

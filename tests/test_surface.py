@@ -313,6 +313,32 @@ def test_thickness_of_a_slab_and_its_thin_regions():
     assert thin_regions(slab, 0.5 * d, spacing=0.05).count == 0
 
 
+def test_thin_band_of_a_2d_prism_measures_the_section_perimeter():
+    # A 2-D strip section L x t extruded deep along z: its long sides are t thick, its ends L
+    # (elementary geometry; common practice, no single source). Examining a band of the walls
+    # about z = 0 gives the thin fraction of the perimeter, 2L / (2L + 2t), and the exact
+    # thickness; the deep caps never count.
+    from ibprep.triangles import extrude_loops
+
+    L, t, limit = 1.0, 0.02, 0.05
+    strip = np.array([[0.0, -t / 2], [L, -t / 2], [L, t / 2], [0.0, t / 2]])
+    prism = extrude_loops([strip], half_depth=2.0)
+    band = thin_regions(prism, limit, spacing=0.025, planar_band=0.05)
+    assert band.count > 0 and band.min_thickness == pytest.approx(t, rel=1e-9)
+    np.testing.assert_allclose(band.thickness, t, rtol=1e-9)
+    assert band.area / band.examined_area == pytest.approx(2 * L / (2 * L + 2 * t), rel=1e-6)
+    assert np.all(np.abs(band.points[:, 2]) <= 0.05 + 1e-12)
+    # the band is about a fortieth of the walls' depth: far fewer markers for the same answer
+    whole = thin_regions(prism, limit, spacing=0.025)
+    assert whole.count > 20 * band.count
+    assert whole.area / whole.examined_area < band.area / band.examined_area  # diluted by the caps
+    v, f = extrude_loops([strip], half_depth=0.1)
+    with pytest.raises(InputError, match="does not reach the plane z = 0"):
+        thin_regions((v + [0.0, 0.0, 5.0], f), limit, planar_band=0.05)
+    with pytest.raises(InputError, match="planar_band must be a positive"):
+        thin_regions(prism, limit, planar_band=0.0)
+
+
 def test_wing_is_thin_only_near_the_trailing_edge():
     # NACA 0012 flat-ended wing: y_t < 0.01 c only aft of about x = 0.95 c (REFERENCES §1.7 [computed]:
     # 95 %c ordinate 0.807 %c) — near the nose the inward normal crosses the whole section.

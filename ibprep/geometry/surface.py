@@ -773,6 +773,9 @@ class ThinRegions:
     min_thickness : float — metres; smallest thickness found (``inf`` when no
         marker is below the limit: rays are not followed past it).
     limit : float — metres; the limit asked for.
+    examined_area : float — m^2; area of all the markers examined (the whole
+        surface, or the band of side walls with ``planar_band``): ``area /
+        examined_area`` is the thin fraction.
     """
 
     points: np.ndarray
@@ -780,6 +783,7 @@ class ThinRegions:
     area: float
     min_thickness: float
     limit: float
+    examined_area: float
 
     @property
     def count(self) -> int:
@@ -787,7 +791,8 @@ class ThinRegions:
         return int(len(self.thickness))
 
 
-def thin_regions(mesh, min_thickness: float, *, spacing: float | None = None) -> ThinRegions:
+def thin_regions(mesh, min_thickness: float, *, spacing: float | None = None,
+                 planar_band: float | None = None) -> ThinRegions:
     """Surface markers where the body is thinner than ``min_thickness``.
 
     Parameters
@@ -795,6 +800,10 @@ def thin_regions(mesh, min_thickness: float, *, spacing: float | None = None) ->
     mesh : trimesh.Trimesh or (vertices, faces) pair — closed, outward; metres.
     min_thickness : float — metres; e.g. two grid cells.
     spacing : float, optional — metres; marker spacing (default ``min_thickness``).
+    planar_band : float, optional — metres; for the prism of a 2-D section
+        (extruded along z about z = 0): examine only its side walls within
+        ``|z| <= planar_band``, so the cost follows the section's perimeter and
+        not the prism's depth, and the fraction is one of the perimeter.
 
     Returns
     -------
@@ -803,7 +812,15 @@ def thin_regions(mesh, min_thickness: float, *, spacing: float | None = None) ->
     limit = float(min_thickness)
     if not (math.isfinite(limit) and limit > 0):
         raise InputError(f"min_thickness must be a positive length in metres, got {min_thickness!r}")
+    if planar_band is not None:
+        band = float(planar_band)
+        if not (math.isfinite(band) and band > 0):
+            raise InputError(f"planar_band must be a positive half-width in metres, got {planar_band!r}")
+        mesh = _side_band(mesh, band)
     pts, nrm, area = surface_markers(mesh, limit if spacing is None else spacing)
+    if planar_band is not None:
+        side = np.abs(nrm[:, 2]) < 0.5  # the band has no caps; this drops none but slivers at its rims
+        pts, nrm, area = pts[side], nrm[side], area[side]
     thick = local_thickness(mesh, pts, nrm, max_distance=limit)
     thin = thick < limit
     return ThinRegions(
@@ -812,4 +829,20 @@ def thin_regions(mesh, min_thickness: float, *, spacing: float | None = None) ->
         area=float(area[thin].sum()),
         min_thickness=float(thick.min()) if len(thick) else float("inf"),
         limit=limit,
+        examined_area=float(area.sum()),
     )
+
+
+def _side_band(mesh, half: float):
+    """The part of a surface with |z| <= half, open where it was cut (trimesh's plane slicing)."""
+    from trimesh.intersections import slice_faces_plane
+
+    v, f = _arrays(mesh)
+    v, f = slice_faces_plane(v, f, plane_normal=np.array([0.0, 0.0, 1.0]), plane_origin=np.array([0.0, 0.0, -half]))[:2]
+    if len(f):
+        v, f = slice_faces_plane(v, f, plane_normal=np.array([0.0, 0.0, -1.0]),
+                                 plane_origin=np.array([0.0, 0.0, half]))[:2]
+    if len(f) == 0:
+        raise InputError(f"the surface does not reach the plane z = 0 within {half:.3g} m; "
+                         "a 2-D body is a prism about z = 0")
+    return np.asarray(v, dtype=float), np.asarray(f, dtype=np.int64)
