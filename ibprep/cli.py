@@ -27,9 +27,16 @@ class _Parser(argparse.ArgumentParser):
 
 
 def _progress(enabled: bool):
-    """A progress(done, total) callback drawing a bar on stderr when it is a terminal."""
-    if not enabled or not sys.stderr.isatty():
+    """A progress(done, total) callback: a bar on a terminal, plain lines in a log file.
+
+    A batch job's stderr is a file: it gets a line at each tenth of the steps (at most
+    one every 5 s) and at least one a minute, with the time elapsed and an estimate of
+    the time left.
+    """
+    if not enabled:
         return None, lambda: None
+    if not sys.stderr.isatty():
+        return _log_progress(), lambda: None
     from tqdm import tqdm
 
     bar = tqdm(total=0, unit="step", file=sys.stderr, leave=False, desc="checking steps")
@@ -40,6 +47,35 @@ def _progress(enabled: bool):
         bar.refresh()
 
     return update, bar.close
+
+
+def _log_progress():
+    import time
+
+    start = time.monotonic()
+    last = {"t": start, "frac": 0.0}
+
+    def update(done, total):
+        now = time.monotonic()
+        frac = done / total if total else 1.0
+        due = frac >= last["frac"] + 0.1 and now - last["t"] >= 5.0
+        if not (done >= total or due or now - last["t"] >= 60.0):
+            return
+        last["t"], last["frac"] = now, frac
+        took = now - start
+        left = f", about {_duration(took * (1 - frac) / frac)} to go" if 0 < frac < 1 else ""
+        print(f"checking steps: {done}/{total} ({100 * frac:.0f} %), {_duration(took)} elapsed{left}",
+              file=sys.stderr, flush=True)
+
+    return update
+
+
+def _duration(seconds: float) -> str:
+    if seconds < 90:
+        return f"{seconds:.0f} s"
+    if seconds < 5400:
+        return f"{seconds / 60:.1f} min"
+    return f"{seconds / 3600:.1f} h"
 
 
 # --------------------------------------------------------------------------- formatting

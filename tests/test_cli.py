@@ -179,3 +179,33 @@ def test_tandem_case_exports_one_marker_file_per_body(tmp_path, capsys):
 
     both = load_surface(out / "body_step0000.stl")
     assert check_surface(both).n_bodies == 2 and check_surface(both).ok
+
+
+def test_progress_goes_to_a_log_file_as_plain_lines(tmp_path, capsys):
+    # A batch job's stderr is a file, not a terminal: progress arrives as lines, the last at 100 %.
+    assert main(["check", str(_case(tmp_path))]) in (0, 1)
+    err = capsys.readouterr().err.strip().splitlines()
+    assert err and err[-1].startswith("checking steps: ") and "(100 %)" in err[-1], err
+    assert "\r" not in "".join(err)
+    assert main(["check", str(_case(tmp_path)), "--no-progress"]) in (0, 1)
+    assert "checking steps" not in capsys.readouterr().err
+
+
+def test_progress_lines_are_rate_limited(monkeypatch, capsys):
+    import time
+
+    from ibprep import cli
+
+    clock = iter([0.0, 1.0, 2.0, 7.0, 8.0, 70.0, 71.0])
+    monkeypatch.setattr(time, "monotonic", lambda: next(clock))
+    update = cli._log_progress()  # start at t = 0
+    update(5, 100)  # 1 s, 5 %: too soon and too little
+    update(15, 100)  # 2 s, 15 %: a tenth more, but under 5 s since the start
+    update(16, 100)  # 7 s: a tenth more and 5 s -> printed
+    update(17, 100)  # 8 s: no
+    update(18, 100)  # 70 s: a minute since the last line -> printed
+    update(100, 100)  # done -> printed
+    lines = capsys.readouterr().err.strip().splitlines()
+    assert [ln.split(" (")[0] for ln in lines] == ["checking steps: 16/100", "checking steps: 18/100",
+                                                   "checking steps: 100/100"]
+    assert "about" in lines[0] and "to go" in lines[0] and "to go" not in lines[-1]
