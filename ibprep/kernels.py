@@ -148,20 +148,21 @@ def _closest_on_triangle(px, py, pz, tri, out):
 
 # --------------------------------------------------------- fan crossings
 @numba.njit(**_JIT)
-def _fan_row(ox, oy, oz, ex, ey, ez, nc, hit, reach, grid_origin, s, dims, cstart, ccount, citems, pcentre,
-             pradius, pparent, tri, fnormal, rmax, lo, hi, l_face, l_cx, l_cy, l_cz, l_box, l_so, l_cc, l_r2,
-             c_mx, c_my, c_mz, c_ok):
-    """Crossings of the nc segments from (ox, oy, oz) to (ex[j], ey[j], ez[j]): hit[j] set true.
+def _gather(ox, oy, oz, reach, grid_origin, s, dims, cstart, ccount, citems, pcentre, pradius, pparent, tri,
+            fnormal, rmax, lo, hi, l_face, l_cx, l_cy, l_cz, l_box, l_so, l_cc, l_r2):
+    """The pieces whose bounding sphere comes within reach of (ox, oy, oz), with their screens.
 
-    One row of segments_cross_fan; hit[:nc] must come in false. reach bounds the
-    segments' lengths; the l_* and c_* arrays are scratch.
+    Fills l_*[:m] (parent face, centre relative to the origin, box half-width,
+    origin's side of the plane, squared centre distance, squared radius) and
+    returns m. Every point of the surface within reach of the origin lies in the
+    sphere of a gathered piece.
     """
     breach = reach + rmax  # near_pairs: bucket range grown by the largest piece radius
     o3 = (ox, oy, oz)
     for k in range(3):
         pk = o3[k]
         if (pk + breach < grid_origin[k]) or (pk - breach > grid_origin[k] + dims[k] * s):
-            return
+            return 0
         lo[k] = min(max(np.int64(math.floor(((pk - breach) - grid_origin[k]) / s)), 0), dims[k] - 1)
         hi[k] = min(max(np.int64(math.floor(((pk + breach) - grid_origin[k]) / s)), 0), dims[k] - 1)
     # Gather: the ball screen of near_pairs, and per piece the quantities of its plane.
@@ -192,8 +193,13 @@ def _fan_row(ox, oy, oz, ex, ey, ez, nc, hit, reach, grid_origin, s, dims, cstar
                     # round-off of the sphere screen below (~1e-8 (reach + radius)).
                     l_box[m] = pradius[t] + 1e-6 * (pradius[t] + reach)
                     m += 1
-    if m == 0:
-        return
+    return m
+
+
+@numba.njit(**_JIT)
+def _fan_test(ox, oy, oz, ex, ey, ez, nc, hit, m, tri, fnormal, l_face, l_cx, l_cy, l_cz, l_box, l_so, l_cc,
+              l_r2, c_mx, c_my, c_mz, c_ok):
+    """Crossings of the nc segments from the origin against the m gathered pieces: hit[j] set true."""
     # The segments as contiguous centre/half-extent arrays of their boxes.
     for jj in range(nc):
         c_mx[jj] = 0.5 * (ex[jj] - ox)
@@ -234,6 +240,22 @@ def _fan_row(ox, oy, oz, ex, ey, ez, nc, hit, reach, grid_origin, s, dims, cstar
                 continue
             if _segment_crosses(ox, oy, oz, ex[jj], ey[jj], ez[jj], tri[f]):
                 hit[jj] = True
+
+
+@numba.njit(**_JIT)
+def _fan_row(ox, oy, oz, ex, ey, ez, nc, hit, reach, grid_origin, s, dims, cstart, ccount, citems, pcentre,
+             pradius, pparent, tri, fnormal, rmax, lo, hi, l_face, l_cx, l_cy, l_cz, l_box, l_so, l_cc, l_r2,
+             c_mx, c_my, c_mz, c_ok):
+    """Crossings of the nc segments from (ox, oy, oz) to (ex[j], ey[j], ez[j]): hit[j] set true.
+
+    One row of segments_cross_fan; hit[:nc] must come in false. reach bounds the
+    segments' lengths; the l_* and c_* arrays are scratch.
+    """
+    m = _gather(ox, oy, oz, reach, grid_origin, s, dims, cstart, ccount, citems, pcentre, pradius, pparent, tri,
+                fnormal, rmax, lo, hi, l_face, l_cx, l_cy, l_cz, l_box, l_so, l_cc, l_r2)
+    if m > 0:
+        _fan_test(ox, oy, oz, ex, ey, ez, nc, hit, m, tri, fnormal, l_face, l_cx, l_cy, l_cz, l_box, l_so, l_cc,
+                  l_r2, c_mx, c_my, c_mz, c_ok)
 
 
 @numba.njit(**_JIT)
@@ -366,6 +388,64 @@ def _ring_pass(px, py, pz, qb, ring, dims, bstart, bcount, bitems, pcentre, prad
 
 
 @numba.njit(**_JIT)
+def _closest_one(px, py, pz, qb, grid_origin, s, dims, q_max, max_distance, bstart, bcount, bitems, pcentre,
+                 pradius, pwitness, pparent, tri, state, qbuf):
+    """Ring-by-ring closest point of one point; state = [best_d2, face, region, qx, qy, qz].
+
+    Returns (distance, exact), as proximity.TriangleIndex.closest for one query.
+    """
+    qb[0] = np.int64(math.floor((px - grid_origin[0]) / s))
+    qb[1] = np.int64(math.floor((py - grid_origin[1]) / s))
+    qb[2] = np.int64(math.floor((pz - grid_origin[2]) / s))
+    state[0] = np.inf
+    state[1] = -1.0
+    state[2] = 0.0
+    state[3] = 0.0
+    state[4] = 0.0
+    state[5] = 0.0
+    lower = 0.0
+    ex = False
+    finished = False
+    ring = 0
+    while ring <= q_max:
+        ub = _ring_pass(px, py, pz, qb, ring, dims, bstart, bcount, bitems, pcentre, pradius, pwitness,
+                        pparent, tri, 0.0, state, qbuf, True)
+        if ub < np.inf:  # the ring has pairs
+            ub = min(ub, math.sqrt(state[0]))
+            _ring_pass(px, py, pz, qb, ring, dims, bstart, bcount, bitems, pcentre, pradius, pwitness,
+                       pparent, tri, ub, state, qbuf, False)
+        reach = ring * s
+        if math.sqrt(state[0]) <= reach:
+            ex = True
+            finished = True
+            break
+        if reach >= max_distance:
+            lower = min(reach, max_distance)
+            finished = True
+            break
+        ring += 1
+    if not finished:  # the whole bucket grid was searched
+        ex = state[0] < np.inf
+    d = math.sqrt(state[0])
+    return (d if ex else min(lower, d)), ex
+
+
+@numba.njit(**_JIT)
+def _pseudo_normal(f, reg, faces, fnormal, enormal, vnormal, out):
+    """Outward pseudo-normal of face f's closest-point region reg (face, edge or vertex)."""
+    if reg == _VA or reg == _VB or reg == _VC:
+        vtx = faces[f, reg - _VA]
+        for k in range(3):
+            out[k] = vnormal[vtx, k]
+    elif reg == _EAB or reg == _EBC or reg == _ECA:
+        for k in range(3):
+            out[k] = enormal[f, reg - _EAB, k]
+    else:
+        for k in range(3):
+            out[k] = fnormal[f, k]
+
+
+@numba.njit(**_JIT)
 def _closest_kernel(p, grid_origin, s, dims, q_max, max_distance, bstart, bcount, bitems, pcentre, pradius,
                     pwitness, pparent, tri, faces, fnormal, enormal, vnormal):
     n = p.shape[0]
@@ -378,40 +458,9 @@ def _closest_kernel(p, grid_origin, s, dims, q_max, max_distance, bstart, bcount
     state = np.empty(6)
     qbuf = np.empty(3)
     for i in range(n):
-        px, py, pz = p[i, 0], p[i, 1], p[i, 2]
-        for k in range(3):
-            qb[k] = np.int64(math.floor((p[i, k] - grid_origin[k]) / s))
-        state[0] = np.inf
-        state[1] = -1.0
-        state[2] = 0.0
-        state[3] = 0.0
-        state[4] = 0.0
-        state[5] = 0.0
-        lower = 0.0
-        ex = False
-        finished = False
-        ring = 0
-        while ring <= q_max:
-            ub = _ring_pass(px, py, pz, qb, ring, dims, bstart, bcount, bitems, pcentre, pradius, pwitness,
-                            pparent, tri, 0.0, state, qbuf, True)
-            if ub < np.inf:  # the ring has pairs
-                ub = min(ub, math.sqrt(state[0]))
-                _ring_pass(px, py, pz, qb, ring, dims, bstart, bcount, bitems, pcentre, pradius, pwitness,
-                           pparent, tri, ub, state, qbuf, False)
-            reach = ring * s
-            if math.sqrt(state[0]) <= reach:
-                ex = True
-                finished = True
-                break
-            if reach >= max_distance:
-                lower = min(reach, max_distance)
-                finished = True
-                break
-            ring += 1
-        if not finished:  # the whole bucket grid was searched
-            ex = state[0] < np.inf
-        d = math.sqrt(state[0])
-        dist[i] = d if ex else min(lower, d)
+        d, ex = _closest_one(p[i, 0], p[i, 1], p[i, 2], qb, grid_origin, s, dims, q_max, max_distance, bstart,
+                             bcount, bitems, pcentre, pradius, pwitness, pparent, tri, state, qbuf)
+        dist[i] = d
         exact[i] = ex
         point[i, 0] = state[3]
         point[i, 1] = state[4]
@@ -419,17 +468,7 @@ def _closest_kernel(p, grid_origin, s, dims, q_max, max_distance, bstart, bcount
         f = np.int64(state[1])
         if ex and f >= 0:
             face[i] = f
-            reg = np.int64(state[2])
-            if reg == _VA or reg == _VB or reg == _VC:
-                vtx = faces[f, reg - _VA]
-                for k in range(3):
-                    normal[i, k] = vnormal[vtx, k]
-            elif reg == _EAB or reg == _EBC or reg == _ECA:
-                for k in range(3):
-                    normal[i, k] = enormal[f, reg - _EAB, k]
-            else:
-                for k in range(3):
-                    normal[i, k] = fnormal[f, k]
+            _pseudo_normal(f, np.int64(state[2]), faces, fnormal, enormal, vnormal, normal[i])
     return point, dist, normal, face, exact
 
 
@@ -776,9 +815,54 @@ def _normal_derivative_row(x, y, z, nx, ny, nz, planar, out):
 
 
 @numba.njit(**_JIT)
-def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt, nfit, allowed, offs, round_n,
-                     round_r, min_visible, kmax, image, neumann, planar, weight_kind, grid_origin, s, dims, cstart,
-                     ccount, citems, pcentre, pradius, pparent, tri, fnormal, rmax):
+def _boundary_point(i, ox, oy, oz, reach, m, l_face, l_cc, l_box, tri, qb, grid_origin, s, dims, q_max, bstart,
+                    bcount, bitems, pcentre, pradius, pwitness, pparent, faces, fnormal, enormal, vnormal, two_d,
+                    nudge, state, qbuf, bpt, nrm, dist):
+    """Closest surface point and pseudo-normal of the origin into bpt[i], nrm[i], dist[i].
+
+    Searches the m gathered pieces (every surface point within reach of the origin
+    lies in one of them); if none is that close, the ring search of closest().
+    On a 2-D grid the point and normal are put in the plane z = 0. Returns whether
+    the origin lies on the surface (closer than nudge).
+    """
+    best = np.inf
+    bf = -1
+    breg = 0
+    bx = by = bz = 0.0
+    for k in range(m):
+        r = math.sqrt(l_cc[k]) - l_box[k]  # no point of the piece is nearer than this
+        if r > 0.0 and r * r > best:
+            continue
+        f = l_face[k]
+        reg = _closest_on_triangle(ox, oy, oz, tri[f], qbuf)
+        dx, dy, dz = qbuf[0] - ox, qbuf[1] - oy, qbuf[2] - oz
+        d2 = _dot3(dx, dy, dz, dx, dy, dz)
+        if d2 < best:
+            best, bf, breg = d2, f, reg
+            bx, by, bz = qbuf[0], qbuf[1], qbuf[2]
+    if not (math.sqrt(best) <= reach * (1 - 1e-9)):
+        _closest_one(ox, oy, oz, qb, grid_origin, s, dims, q_max, np.inf, bstart, bcount, bitems, pcentre, pradius,
+                     pwitness, pparent, tri, state, qbuf)
+        best, bf, breg = state[0], np.int64(state[1]), np.int64(state[2])
+        bx, by, bz = state[3], state[4], state[5]
+    dist[i] = math.sqrt(best)
+    bpt[i, 0], bpt[i, 1], bpt[i, 2] = bx, by, bz
+    if bf >= 0:
+        _pseudo_normal(bf, breg, faces, fnormal, enormal, vnormal, nrm[i])
+    if two_d:
+        bpt[i, 2] = 0.0
+        nrm[i, 2] = 0.0
+        ln = max(math.sqrt(nrm[i, 0] * nrm[i, 0] + nrm[i, 1] * nrm[i, 1] + nrm[i, 2] * nrm[i, 2]), 1e-300)
+        nrm[i, 0] /= ln
+        nrm[i, 1] /= ln
+    return dist[i] < nudge
+
+
+@numba.njit(**_JIT)
+def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt, nrm, dist, allowed, offs,
+                     round_n, round_r, min_visible, kmax, image, neumann, planar, weight_kind, find_boundary, two_d,
+                     nudge, grid_origin, s, dims, cstart, ccount, citems, pcentre, pradius, pparent, tri, fnormal,
+                     rmax, q_max, bstart, bcount, bitems, pwitness, faces, enormal, vnormal):
     n = cells.shape[0]
     m = 6 if planar else 10
     no = offs.shape[0]
@@ -805,6 +889,9 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
     brow = np.empty(m)
     nrounds = round_n.shape[0]
     s1, s2 = shape3[1], shape3[2]
+    qb = np.empty(3, dtype=np.int64)
+    state = np.empty(6)
+    qbuf = np.empty(3)
     for i in range(n):
         ai, aj, ak = anchor[i, 0], anchor[i, 1], anchor[i, 2]
         ox, oy, oz = origin[i, 0], origin[i, 1], origin[i, 2]
@@ -836,10 +923,36 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
                 dx, dy, dz = x - ox, yy - oy, z - oz
                 longest = max(longest, dx * dx + dy * dy + dz * dz)
                 nc += 1
-            if nc > 0:
+            if rd == 0 and find_boundary:
+                # The boundary point from the pieces gathered for the first round's segments.
+                reach = math.sqrt(longest) * (1 + 1e-9)
+                mg = _gather(ox, oy, oz, reach, grid_origin, s, dims, cstart, ccount, citems, pcentre, pradius,
+                             pparent, tri, fnormal, rmax, lo, hi, l_face, l_cx, l_cy, l_cz, l_box, l_so, l_cc, l_r2)
+                on_surface = _boundary_point(i, ox, oy, oz, reach, mg, l_face, l_cc, l_box, tri, qb, grid_origin, s,
+                                             dims, q_max, bstart, bcount, bitems, pcentre, pradius, pwitness,
+                                             pparent, faces, fnormal, enormal, vnormal, two_d, nudge, state, qbuf,
+                                             bpt, nrm, dist)
+                if on_surface:
+                    # A centre on the surface sees along it: look from just off it.
+                    ox = bpt[i, 0] + nudge * nrm[i, 0]
+                    oy = bpt[i, 1] + nudge * nrm[i, 1]
+                    oz = bpt[i, 2] + nudge * nrm[i, 2]
+                    origin[i, 0], origin[i, 1], origin[i, 2] = ox, oy, oz
+                    longest = 0.0
+                    for jj in range(nc):
+                        dx, dy, dz = ex[jj] - ox, ey[jj] - oy, ez[jj] - oz
+                        longest = max(longest, dx * dx + dy * dy + dz * dz)
+                    mg = _gather(ox, oy, oz, math.sqrt(longest) * (1 + 1e-9), grid_origin, s, dims, cstart, ccount,
+                                 citems, pcentre, pradius, pparent, tri, fnormal, rmax, lo, hi, l_face, l_cx, l_cy,
+                                 l_cz, l_box, l_so, l_cc, l_r2)
+                if nc > 0 and mg > 0:
+                    _fan_test(ox, oy, oz, ex, ey, ez, nc, hit, mg, tri, fnormal, l_face, l_cx, l_cy, l_cz, l_box,
+                              l_so, l_cc, l_r2, c_mx, c_my, c_mz, c_ok)
+            elif nc > 0:
                 _fan_row(ox, oy, oz, ex, ey, ez, nc, hit, math.sqrt(longest) * (1 + 1e-9), grid_origin, s, dims,
                          cstart, ccount, citems, pcentre, pradius, pparent, tri, fnormal, rmax, lo, hi, l_face,
                          l_cx, l_cy, l_cz, l_box, l_so, l_cc, l_r2, c_mx, c_my, c_mz, c_ok)
+            if nc > 0:
                 for jj in range(nc):
                     if not hit[jj]:
                         cvis[cidx[jj]] = True
@@ -904,7 +1017,7 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
         wq = math.sqrt(_weight_of(math.sqrt(xs * xs + ys * ys + zs * zs), support, weight_kind))
         if wq != 0.0:
             if neumann:
-                _normal_derivative_row(xs, ys, zs, nfit[i, 0], nfit[i, 1], 0.0 if planar else nfit[i, 2], planar,
+                _normal_derivative_row(xs, ys, zs, nrm[i, 0], nrm[i, 1], 0.0 if planar else nrm[i, 2], planar,
                                        brow)
             else:
                 _basis_row(xs, ys, zs, planar, brow)
@@ -928,17 +1041,18 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
     return nb, nvis, used_r, wts, wbnd, cond
 
 
-def stencil_fits(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt, nfit, allowed, offsets, radii,
-                 min_visible, kmax, *, image, neumann, planar, weight, index):
+def stencil_fits(tags, shape3, lower3, h, cells, anchor, origin, centre, allowed, offsets, radii, min_visible,
+                 kmax, *, image, neumann, planar, weight, index, boundary=None, two_d=False, nudge=0.0):
     """Neighbours, visibility and WLS fit of every stencil in one compiled pass.
 
     The whole middle of :func:`ibprep.stencils.build_stencils` for one cell at a
-    time: candidate cells from the sorted offsets, round by round up to the
-    radii; the segment test of :func:`segments_cross_fan` against the surface
-    pieces near the origin; the nearest ``kmax`` visible kept; the weighted
-    design matrix in scaled coordinates; and the QR solve of
-    :func:`wls_value_weights`. Agrees with the array pipeline it stands in for
-    (tests/test_kernels.py): same neighbours and counts, weights to round-off.
+    time: the boundary point (unless given), candidate cells from the sorted
+    offsets, round by round up to the radii; the segment test of
+    :func:`segments_cross_fan` against the surface pieces near the origin; the
+    nearest ``kmax`` visible kept; the weighted design matrix in scaled
+    coordinates; and the QR solve of :func:`wls_value_weights`. Agrees with the
+    array pipeline it stands in for (tests/test_kernels.py): same neighbours and
+    counts, weights to round-off.
 
     Parameters
     ----------
@@ -950,7 +1064,6 @@ def stencil_fits(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt, nf
     anchor : (n, 3) int — the cell the offsets start from.
     origin : (n, 3) float — metres; where visibility is tested from.
     centre : (n, 3) float — metres; the fitting point.
-    bpt, nfit : (n, 3) float — boundary point (metres) and unit normal of the fit.
     allowed : (3,) bool — which tags may be neighbours.
     offsets : (no, 3) int — candidate offsets sorted by length.
     radii : sequence of float — cells; the rounds' radii, increasing.
@@ -958,24 +1071,48 @@ def stencil_fits(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt, nf
     image, neumann, planar : bool — image-point fit; Neumann boundary row; 6-term basis.
     weight : str — "gaussian", "inverse-distance" or "wendland".
     index : TriangleIndex — the bucketed surface.
+    boundary : ((n, 3), (n, 3)) float, optional — boundary points (metres) and unit
+        normals. If not given they are found here: the closest point of the
+        origin (which must then be the fitting point) with its pseudo-normal,
+        put in the plane z = 0 when ``two_d``; an origin closer to the surface
+        than ``nudge`` metres is moved that far off it along the normal.
+    two_d : bool — a 2-D grid (see boundary).
+    nudge : float — metres (see boundary).
 
     Returns
     -------
     nb : (n, kmax) int — neighbours, -1 padded; nvis : (n,) int; used_radius : (n,)
     float; weights : (n, kmax) float; boundary : (n,) float — raw weight of the
-    boundary row; cond : (n,) float — inf where the fit is rank deficient.
+    boundary row; cond : (n,) float — inf where the fit is rank deficient;
+    bpt, nrm : (n, 3) float — the boundary points and normals; dist : (n,) float —
+    the origin's distance to the surface (zeros when ``boundary`` was given);
+    origin : (n, 3) float — the origins used.
     """
     offsets = np.ascontiguousarray(offsets, dtype=np.int64)
     len2 = (offsets * offsets).sum(axis=1)
     radii = np.asarray(radii, dtype=float)
     round_n = np.array([np.count_nonzero(len2 <= r * r + 1e-9) for r in radii], dtype=np.int64)
-    f64 = lambda a: np.ascontiguousarray(a, dtype=float)  # noqa: E731
-    return _stencils_kernel(
+    f64 = lambda a: np.array(a, dtype=float, order="C")  # noqa: E731 (copies: the kernel writes some)
+    n = len(cells)
+    find = boundary is None
+    bpt, nrm = (np.zeros((n, 3)), np.zeros((n, 3))) if find else (f64(boundary[0]), f64(boundary[1]))
+    dist = np.zeros(n)
+    origin = f64(origin)
+    dims = np.asarray(index.dims, dtype=np.int64)
+    if find and n:
+        qb = np.floor((origin - index.origin) / index.bucket_size).astype(np.int64)
+        q_max = int(max(index.dims)) + int(np.max(np.abs(qb - np.clip(qb, 0, dims - 1)))) + 1
+    else:
+        q_max = 0
+    out = _stencils_kernel(
         np.ascontiguousarray(tags, dtype=np.uint8), np.asarray(shape3, dtype=np.int64), f64(lower3), float(h),
-        np.ascontiguousarray(cells, dtype=np.int64), np.ascontiguousarray(anchor, dtype=np.int64), f64(origin),
-        f64(centre), f64(bpt), f64(nfit), np.asarray(allowed, dtype=bool), offsets[: round_n[-1]], round_n, radii,
-        int(min_visible), int(kmax), bool(image), bool(neumann), bool(planar), _WEIGHT_CODES[weight],
-        np.asarray(index.origin, dtype=float), float(index.bucket_size), np.asarray(index.dims, dtype=np.int64),
+        np.ascontiguousarray(cells, dtype=np.int64), np.ascontiguousarray(anchor, dtype=np.int64), origin,
+        f64(centre), bpt, nrm, dist, np.asarray(allowed, dtype=bool), offsets[: round_n[-1]], round_n, radii,
+        int(min_visible), int(kmax), bool(image), bool(neumann), bool(planar), _WEIGHT_CODES[weight], find,
+        bool(two_d), float(nudge), np.asarray(index.origin, dtype=float), float(index.bucket_size), dims,
         index.centre_start, index.centre_count, index.centre_items, index.piece_centre, index.piece_radius,
-        index.piece_parent, index.tri, index.face_normal, float(index.piece_radius.max(initial=0.0)),
+        index.piece_parent, index.tri, index.face_normal, float(index.piece_radius.max(initial=0.0)), q_max,
+        index.bucket_start, index.bucket_count, index.bucket_items, index.piece_witness, index.faces,
+        index.edge_normal, index.vertex_normal,
     )
+    return (*out, bpt, nrm, dist, origin)

@@ -703,31 +703,38 @@ def build_stencils(
         return lower3 + (ijk + 0.5) * h, ijk
 
     x0, ijk0 = centres_of(cells)
-    cp = _closest(index, x0)
-    bpt = cp.point.copy()
-    nrm = cp.normal.copy()
-    if two_d:
-        bpt[:, 2] = 0.0
-        nrm[:, 2] = 0.0
-        nrm /= np.maximum(np.linalg.norm(nrm, axis=1), 1e-300)[:, None]
-
-    # Fitting point, visibility origin and the cell the candidate offsets start from.
-    if method == "image-point":
-        centre = 2.0 * bpt - x0
-        if planar:
-            centre[:, 2] = x0[:, 2]
-        anchor = np.clip(np.floor((centre - lower3) / h).astype(np.int64), 0, shape3 - 1)
-        origin = centre
-    elif interface == "solid-side":
-        centre = x0
-        anchor = ijk0
-        origin = bpt + _NUDGE * h * nrm
+    # Fluid-side cells are their own fitting point and visibility origin: the compiled pass
+    # finds their boundary points from the pieces it gathers for the segments anyway.
+    fused = _COMPILED and interface == "fluid-side"
+    if fused:
+        bpt = nrm = None
+        centre, anchor, origin = x0, ijk0, x0
     else:
-        centre = x0
-        anchor = ijk0
-        # A cell centre lying on the surface sees along the surface: look from just off it.
-        on_surface = cp.distance < _NUDGE * h
-        origin = np.where(on_surface[:, None], bpt + _NUDGE * h * nrm, x0)
+        cp = _closest(index, x0)
+        bpt = cp.point.copy()
+        nrm = cp.normal.copy()
+        if two_d:
+            bpt[:, 2] = 0.0
+            nrm[:, 2] = 0.0
+            nrm /= np.maximum(np.linalg.norm(nrm, axis=1), 1e-300)[:, None]
+
+        # Fitting point, visibility origin and the cell the candidate offsets start from.
+        if method == "image-point":
+            centre = 2.0 * bpt - x0
+            if planar:
+                centre[:, 2] = x0[:, 2]
+            anchor = np.clip(np.floor((centre - lower3) / h).astype(np.int64), 0, shape3 - 1)
+            origin = centre
+        elif interface == "solid-side":
+            centre = x0
+            anchor = ijk0
+            origin = bpt + _NUDGE * h * nrm
+        else:
+            centre = x0
+            anchor = ijk0
+            # A cell centre lying on the surface sees along the surface: look from just off it.
+            on_surface = cp.distance < _NUDGE * h
+            origin = np.where(on_surface[:, None], bpt + _NUDGE * h * nrm, x0)
 
     # Which tags may serve as neighbours.
     allowed = np.zeros(3, dtype=bool)
@@ -738,13 +745,10 @@ def build_stencils(
     radii = [opts.radius]
     while radii[-1] < opts.max_radius - 1e-9:
         radii.append(min(radii[-1] + _RADIUS_STEP, opts.max_radius))
-    nfit = nrm.copy()
-    if planar:
-        nfit[:, 2] = 0.0
     fit = _fit_compiled if _COMPILED else _fit_arrays
-    nb, nvis, used_radius, wn, ab, cond = fit(
-        flat_tags, shape3, lower3, h, cells, anchor, origin, centre, bpt, nfit, allowed, radii, opts, planar,
-        index, centres_of,
+    nb, nvis, used_radius, wn, ab, cond, bpt, nrm = fit(
+        flat_tags, shape3, lower3, h, cells, anchor, origin, centre, bpt, nrm, allowed, radii, opts, planar,
+        two_d, index, centres_of,
     )
     k = int(max(1, nvis.max()))
     nb = np.ascontiguousarray(nb[:, :k])
@@ -790,24 +794,30 @@ def build_stencils(
 _COMPILED = True
 
 
-def _fit_compiled(flat_tags, shape3, lower3, h, cells, anchor, origin, centre, bpt, nfit, allowed, radii, opts,
-                  planar, index, centres_of):
-    """Neighbours and fit of every stencil in one compiled pass (ibprep.kernels.stencil_fits)."""
-    return _stencil_fits(
-        flat_tags, shape3, lower3, h, cells, anchor, origin, centre, bpt, nfit, allowed,
+def _fit_compiled(flat_tags, shape3, lower3, h, cells, anchor, origin, centre, bpt, nrm, allowed, radii, opts,
+                  planar, two_d, index, centres_of):
+    """Neighbours and fit of every stencil in one compiled pass (ibprep.kernels.stencil_fits).
+
+    With bpt and nrm None the pass finds the boundary points too (fluid-side cells,
+    whose origin is the centre unless it lies on the surface).
+    """
+    nb, nvis, used_radius, wn, ab, cond, bpt, nrm, _, _ = _stencil_fits(
+        flat_tags, shape3, lower3, h, cells, anchor, origin, centre, allowed,
         _offsets(opts.max_radius, planar), radii, opts.min_visible, opts.max_neighbours,
         image=opts.method == "image-point", neumann=opts.bc == "neumann", planar=planar, weight=opts.weight,
-        index=index,
+        index=index, boundary=None if bpt is None else (bpt, nrm), two_d=two_d, nudge=_NUDGE * h,
     )
+    return nb, nvis, used_radius, wn, ab, cond, bpt, nrm
 
 
-def _fit_arrays(flat_tags, shape3, lower3, h, cells, anchor, origin, centre, bpt, nfit, allowed, radii, opts,
-                planar, index, centres_of):
+def _fit_arrays(flat_tags, shape3, lower3, h, cells, anchor, origin, centre, bpt, nrm, allowed, radii, opts,
+                planar, two_d, index, centres_of):
     """The same as _fit_compiled with batched array operations over all stencils.
 
     Returns nb (n, kmax) int, nvis (n,), used_radius (n,), weights (n, kmax), the
-    boundary row's raw weight (n,) and the condition (n,).
+    boundary row's raw weight (n,), the condition (n,), and bpt and nrm as given.
     """
+    nfit = nrm
     n = cells.size
     method = opts.method
     weight = opts.weight
@@ -888,7 +898,8 @@ def _fit_arrays(flat_tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
     a, cond = _wls_kernel(A, sw)
     wts = np.zeros((n, opts.max_neighbours))
     wts[:, :k] = a[:, :k]
-    return np.pad(nb, ((0, 0), (0, opts.max_neighbours - k)), constant_values=-1), nvis, used_radius, wts, a[:, k], cond
+    nb = np.pad(nb, ((0, 0), (0, opts.max_neighbours - k)), constant_values=-1)
+    return nb, nvis, used_radius, wts, a[:, k], cond, bpt, nrm
 
 
 def _side_band(loops, z0: float, half: float, h: float):
