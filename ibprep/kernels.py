@@ -618,84 +618,126 @@ def _extreme_eigvals(G, d, e2, v, p_):  # e2: sub-diagonal work array
     return lmin, lmax
 
 
-@numba.njit(**_JIT)
-def _wls_scratch(r, m):
-    """Scratch of _wls_solve for up to r rows and m unknowns: Bt, V, beta, G, d, e2, v, p_, y."""
-    return (np.empty((m, r)), np.empty((m, r)), np.empty(m), np.empty((m, m)), np.empty(m), np.empty(m),
-            np.empty(m), np.empty(m), np.empty(r))
+# Stencils solved side by side: the QR's loops run over this many stencils at once in the
+# innermost position, which vectorises without changing any stencil's order of operations.
+_LANES = 4
 
 
 @numba.njit(**_JIT)
-def _wls_solve(Bt, nk, m, V, beta, G, d, e2, v, p_, y):
-    """Condition and value weights of one weighted design matrix, given transposed.
+def _lanes_scratch(r, m):
+    """Scratch of _wls_lanes: Bt, V (m, r, L); beta (m, L); G4 (m, m, L); y (r, L); acc, alpha, vv (L,);
+    G (m, m); d, e2, v, p_ (m,); nk, cond (L,)."""
+    L = _LANES
+    return (np.zeros((m, r, L)), np.zeros((m, r, L)), np.zeros((m, L)), np.zeros((m, m, L)), np.zeros((r, L)),
+            np.zeros(L), np.zeros(L), np.zeros(L), np.empty((m, m)), np.empty(m), np.empty(m), np.empty(m),
+            np.empty(m), np.zeros(L, dtype=np.int64), np.zeros(L))
 
-    Bt[k, j] (k < m, j < nk) is column k of diag(sw) A, rows of zero weight left
-    out; it is overwritten. Householder QR (Golub & Van Loan §5.2.1), Bt -> R^T.
-    Returns the condition number (inf if rank deficient, y then undefined) and
-    leaves in y[:nk] the vector z with c_0 = z . (sw f).
+
+@numba.njit(**_JIT)
+def _wls_lanes(Bt, nk, nl, m, V, beta, G4, y, acc, alpha, vv, G, d, e2, v, p_, cond):
+    """Condition and value weights of nl weighted design matrices at once.
+
+    Lane l of Bt (m, r, L) holds the transposed matrix of one stencil, rows
+    [0, nk[l]) (overwritten); rows past nk[l] are zeroed here, which changes no
+    sum. Each lane runs the operations of the one-stencil Householder QR (Golub &
+    Van Loan §5.2.1) in the same order, so its results are those of one stencil
+    alone. Sets cond[l] (inf if rank deficient or too few rows) and leaves in
+    y[:nk[l], l] the vector z with c_0 = z . (sw f).
     """
+    L = _LANES
+    NK = 0
+    for l in range(nl):
+        NK = max(NK, nk[l])
+    for l in range(L):
+        top = nk[l] if l < nl else 0
+        for k in range(m):
+            for j in range(top, NK):
+                Bt[k, j, l] = 0.0
     for k in range(m):
-        nrm2 = 0.0
-        for j in range(k, nk):
-            nrm2 += Bt[k, j] * Bt[k, j]
-        nrm = math.sqrt(nrm2)
-        if nrm == 0.0:
-            beta[k] = 0.0
-            continue
-        alpha = -nrm if Bt[k, k] >= 0.0 else nrm
-        for j in range(k, nk):
-            V[k, j] = Bt[k, j]
-        V[k, k] -= alpha
-        vv = 0.0
-        for j in range(k, nk):
-            vv += V[k, j] * V[k, j]
-        bk = 2.0 / vv
-        beta[k] = bk
-        Bt[k, k] = alpha
-        for j in range(k + 1, nk):
-            Bt[k, j] = 0.0
+        for l in range(L):
+            acc[l] = 0.0
+        for j in range(k, NK):
+            for l in range(L):
+                acc[l] += Bt[k, j, l] * Bt[k, j, l]
+        for l in range(L):
+            nrm = math.sqrt(acc[l])
+            alpha[l] = -nrm if Bt[k, k, l] >= 0.0 else nrm
+            vv[l] = 0.0
+        for j in range(k, NK):
+            for l in range(L):
+                V[k, j, l] = Bt[k, j, l]
+        for l in range(L):
+            V[k, k, l] -= alpha[l]
+        for j in range(k, NK):
+            for l in range(L):
+                vv[l] += V[k, j, l] * V[k, j, l]
+        for l in range(L):
+            beta[k, l] = 2.0 / vv[l] if vv[l] > 0.0 else 0.0  # a zero column: no reflection
+            Bt[k, k, l] = alpha[l]
+        for j in range(k + 1, NK):
+            for l in range(L):
+                Bt[k, j, l] = 0.0
         for col in range(k + 1, m):
-            sdot = 0.0
-            for j in range(k, nk):
-                sdot += V[k, j] * Bt[col, j]
-            sdot *= bk
-            for j in range(k, nk):
-                Bt[col, j] -= sdot * V[k, j]
-    # Condition from the eigenvalues of R^T R, as the numpy path.
+            for l in range(L):
+                acc[l] = 0.0
+            for j in range(k, NK):
+                for l in range(L):
+                    acc[l] += V[k, j, l] * Bt[col, j, l]
+            for l in range(L):
+                acc[l] *= beta[k, l]
+            for j in range(k, NK):
+                for l in range(L):
+                    Bt[col, j, l] -= acc[l] * V[k, j, l]
+    # Condition from the eigenvalues of R^T R (R[k, p] = Bt[p, k] for k <= p).
     for p in range(m):
         for q in range(p, m):
-            sg = 0.0
+            for l in range(L):
+                acc[l] = 0.0
             for k in range(p + 1):
-                sg += Bt[p, k] * Bt[q, k]
-            G[p, q] = sg
-            G[q, p] = sg
-    lmin, lmax = _extreme_eigvals(G, d, e2, v, p_)
-    dmin = np.inf
-    dmax = 0.0
-    for k in range(m):
-        rkk = abs(Bt[k, k])
-        dmin = min(dmin, rkk)
-        dmax = max(dmax, rkk)
-    if not (lmin > _GRAM_RTOL * lmax) or not (dmin > _RANK_RTOL * dmax):
-        return np.inf  # rank deficient
+                for l in range(L):
+                    acc[l] += Bt[p, k, l] * Bt[q, k, l]
+            for l in range(L):
+                G4[p, q, l] = acc[l]
+                G4[q, p, l] = acc[l]
+    for l in range(nl):
+        cond[l] = np.inf
+        if nk[l] < m:
+            continue  # fewer weighted rows than unknowns: rank deficient
+        for p in range(m):
+            for q in range(m):
+                G[p, q] = G4[p, q, l]
+        lmin, lmax = _extreme_eigvals(G, d, e2, v, p_)
+        dmin = np.inf
+        dmax = 0.0
+        for k in range(m):
+            rkk = abs(Bt[k, k, l])
+            dmin = min(dmin, rkk)
+            dmax = max(dmax, rkk)
+        if (lmin > _GRAM_RTOL * lmax) and (dmin > _RANK_RTOL * dmax):
+            cond[l] = math.sqrt(lmax / lmin)
     # z = Q y with R^T y = e_0: forward substitution, then the reflectors in reverse.
-    for k in range(nk):
-        y[k] = 0.0
+    for j in range(NK):
+        for l in range(L):
+            y[j, l] = 0.0
     for k in range(m):
-        sy = 1.0 if k == 0 else 0.0
+        for l in range(L):
+            acc[l] = 1.0 if k == 0 else 0.0
         for j in range(k):
-            sy -= Bt[k, j] * y[j]
-        y[k] = sy / Bt[k, k]
+            for l in range(L):
+                acc[l] -= Bt[k, j, l] * y[j, l]
+        for l in range(L):
+            y[k, l] = acc[l] / Bt[k, k, l] if cond[l] < np.inf else 0.0
     for k in range(m - 1, -1, -1):
-        if beta[k] == 0.0:
-            continue
-        sdot = 0.0
-        for j in range(k, nk):
-            sdot += V[k, j] * y[j]
-        sdot *= beta[k]
-        for j in range(k, nk):
-            y[j] -= sdot * V[k, j]
-    return math.sqrt(lmax / lmin)
+        for l in range(L):
+            acc[l] = 0.0
+        for j in range(k, NK):
+            for l in range(L):
+                acc[l] += V[k, j, l] * y[j, l]
+        for l in range(L):
+            acc[l] *= beta[k, l]
+        for j in range(k, NK):
+            for l in range(L):
+                y[j, l] -= acc[l] * V[k, j, l]
 
 
 @numba.njit(**_JIT)
@@ -703,28 +745,30 @@ def _wls_kernel(A, sw):
     n, r, m = A.shape
     a = np.zeros((n, r))
     cond = np.full(n, np.inf)
-    Bt, V, beta, G, d, e2, v, p_, y = _wls_scratch(r, m)
-    rows = np.empty(r, dtype=np.int64)
-    for i in range(n):
-        # Rows of zero weight (padding) change neither R nor the weights: drop them.
-        nk = 0
-        for j in range(r):
-            if sw[i, j] != 0.0:
-                rows[nk] = j
-                nk += 1
-        if nk < m:
-            continue  # fewer weighted rows than unknowns: rank deficient
-        for jj in range(nk):
-            j = rows[jj]
-            for k in range(m):
-                Bt[k, jj] = sw[i, j] * A[i, j, k]
-        c = _wls_solve(Bt, nk, m, V, beta, G, d, e2, v, p_, y)
-        if not (c < np.inf):
-            continue
-        cond[i] = c
-        for jj in range(nk):
-            j = rows[jj]
-            a[i, j] = y[jj] * sw[i, j]
+    Bt, V, beta, G4, y, acc, alpha, vv, G, d, e2, v, p_, nk, cl = _lanes_scratch(r, m)
+    rows = np.empty((r, _LANES), dtype=np.int64)
+    for i0 in range(0, n, _LANES):
+        nl = min(_LANES, n - i0)
+        for l in range(nl):
+            i = i0 + l
+            # Rows of zero weight (padding) change neither R nor the weights: drop them.
+            c = 0
+            for j in range(r):
+                if sw[i, j] != 0.0:
+                    rows[c, l] = j
+                    for k in range(m):
+                        Bt[k, c, l] = sw[i, j] * A[i, j, k]
+                    c += 1
+            nk[l] = c
+        _wls_lanes(Bt, nk, nl, m, V, beta, G4, y, acc, alpha, vv, G, d, e2, v, p_, cl)
+        for l in range(nl):
+            if not (cl[l] < np.inf):
+                continue
+            i = i0 + l
+            cond[i] = cl[l]
+            for jj in range(nk[l]):
+                j = rows[jj, l]
+                a[i, j] = y[jj, l] * sw[i, j]
     return a, cond
 
 
@@ -883,9 +927,11 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
     key = np.empty(no)
     lo, hi, l_face, l_cx, l_cy, l_cz, l_box, l_so, l_cc, l_r2, c_mx, c_my, c_mz, c_ok = _fan_scratch(
         citems.shape[0], no)
-    Bt, V, beta, G, d, e2, v, p_, y = _wls_scratch(kmax + 1, m)
-    sw = np.empty(kmax + 1)
-    row_of = np.empty(kmax + 1, dtype=np.int64)
+    Bt, V, beta, G4, y, acc, alpha, vv, G, d, e2, v, p_, nk4, cl = _lanes_scratch(kmax + 1, m)
+    sw = np.empty((kmax + 1, _LANES))
+    row_of = np.empty((kmax + 1, _LANES), dtype=np.int64)
+    who = np.empty(_LANES, dtype=np.int64)
+    lane = 0
     brow = np.empty(m)
     nrounds = round_n.shape[0]
     s1, s2 = shape3[1], shape3[2]
@@ -1007,9 +1053,9 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
                 continue
             _basis_row(xs, ys, zs, planar, brow)
             for k in range(m):
-                Bt[k, nk] = wq * brow[k]
-            sw[nk] = wq
-            row_of[nk] = q
+                Bt[k, nk, lane] = wq * brow[k]
+            sw[nk, lane] = wq
+            row_of[nk, lane] = q
             nk += 1
         xs = (bpt[i, 0] - cx) / h
         ys = (bpt[i, 1] - cy) / h
@@ -1022,23 +1068,42 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
             else:
                 _basis_row(xs, ys, zs, planar, brow)
             for k in range(m):
-                Bt[k, nk] = wq * brow[k]
-            sw[nk] = wq
-            row_of[nk] = -1
+                Bt[k, nk, lane] = wq * brow[k]
+            sw[nk, lane] = wq
+            row_of[nk, lane] = -1
             nk += 1
         if nk < m:
             continue  # fewer weighted rows than unknowns: rank deficient
-        cnd = _wls_solve(Bt, nk, m, V, beta, G, d, e2, v, p_, y)
-        if not (cnd < np.inf):
-            continue
-        cond[i] = cnd
-        for jj in range(nk):
-            q = row_of[jj]
-            if q >= 0:
-                wts[i, q] = y[jj] * sw[jj]
-            else:
-                wbnd[i] = y[jj] * sw[jj]
+        # Solve the fits _LANES at a time.
+        nk4[lane] = nk
+        who[lane] = i
+        lane += 1
+        if lane == _LANES:
+            _solve_lanes(lane, m, Bt, V, beta, G4, y, acc, alpha, vv, G, d, e2, v, p_, nk4, cl, sw, row_of, who, wts,
+                         wbnd, cond)
+            lane = 0
+    if lane > 0:
+        _solve_lanes(lane, m, Bt, V, beta, G4, y, acc, alpha, vv, G, d, e2, v, p_, nk4, cl, sw, row_of, who, wts,
+                     wbnd, cond)
     return nb, nvis, used_r, wts, wbnd, cond
+
+
+@numba.njit(**_JIT)
+def _solve_lanes(nl, m, Bt, V, beta, G4, y, acc, alpha, vv, G, d, e2, v, p_, nk4, cl, sw, row_of, who, wts, wbnd,
+                 cond):
+    """Solve the nl fits gathered in the lanes and write their weights and condition."""
+    _wls_lanes(Bt, nk4, nl, m, V, beta, G4, y, acc, alpha, vv, G, d, e2, v, p_, cl)
+    for l in range(nl):
+        if not (cl[l] < np.inf):
+            continue
+        i = who[l]
+        cond[i] = cl[l]
+        for jj in range(nk4[l]):
+            q = row_of[jj, l]
+            if q >= 0:
+                wts[i, q] = y[jj, l] * sw[jj, l]
+            else:
+                wbnd[i] = y[jj, l] * sw[jj, l]
 
 
 def stencil_fits(tags, shape3, lower3, h, cells, anchor, origin, centre, allowed, offsets, radii, min_visible,
