@@ -494,13 +494,13 @@ def _stencil_checks(steps, limits: StencilLimits, figures: dict, h: float) -> li
     if n_bad:
         p = worst_bad.bad_points[0] if worst_bad.bad_points else ()
         out.append(Check("stencil.ok", "fail", float(n_bad), 0, "stencils",
-                         f"{n_bad} of {n_total} stencils over {len(steps)} checked steps are not ok; worst step "
+                         f"{n_bad:,} of {n_total:,} stencils over {len(steps):,} checked steps are not ok; worst step "
                          f"t = {worst_bad.time:.4g} s with {worst_bad.n_bad}, e.g. at {_fmt_point(p)}",
                          "refine near the body (thin parts and tight gaps starve stencils) or relax [checks] limits "
                          "only with care"))
     else:
         out.append(Check("stencil.ok", "pass", 0.0, 0, "stencils",
-                         f"all {n_total} stencils over {len(steps)} checked steps are ok"))
+                         f"all {n_total:,} stencils over {len(steps):,} checked steps are ok"))
     out.append(_above("stencil.condition", wc.worst_condition, limits.max_condition, limits.max_condition, "",
                       f"worst condition number (t = {wc.time:.4g} s at {_fmt_point(wc.worst_condition_at)})",
                       "refine near the body or widen the stencil support"))
@@ -510,11 +510,11 @@ def _stencil_checks(steps, limits: StencilLimits, figures: dict, h: float) -> li
                       "refine near the body; large weights amplify errors"))
     if n_fresh_bad:
         out.append(Check("stencil.fresh", "fail", float(n_fresh_bad), 0, "cells",
-                         f"{n_fresh_bad} of {n_fresh} fresh cells have no valid stencil",
+                         f"{n_fresh_bad:,} of {n_fresh:,} fresh cells have no valid stencil",
                          "reduce the time step or refine near the body"))
     else:
         out.append(Check("stencil.fresh", "pass", 0.0, 0, "cells",
-                         f"all {n_fresh} fresh cells over the checked steps have ok stencils"))
+                         f"all {n_fresh:,} fresh cells over the checked steps have ok stencils"))
     return out
 
 
