@@ -30,8 +30,8 @@ def _progress(enabled: bool):
     """A progress(done, total) callback: a bar on a terminal, plain lines in a log file.
 
     A batch job's stderr is a file: it gets a line at each tenth of the steps (at most
-    one every 5 s) and at least one a minute, with the time elapsed and an estimate of
-    the time left.
+    one every 5 s), and otherwise one a minute as long as chunks keep finishing, with the
+    time elapsed and an estimate of the time left.
     """
     if not enabled:
         return None, lambda: None
@@ -49,19 +49,24 @@ def _progress(enabled: bool):
     return update, bar.close
 
 
-def _log_progress():
+def _clock() -> float:
     import time
 
-    start = time.monotonic()
-    last = {"t": start, "frac": 0.0}
+    return time.monotonic()
+
+
+def _log_progress():
+    start = _clock()
+    last = {"t": start, "tenth": 0}
 
     def update(done, total):
-        now = time.monotonic()
+        now = _clock()
         frac = done / total if total else 1.0
-        due = frac >= last["frac"] + 0.1 and now - last["t"] >= 5.0
+        tenth = (10 * done) // total if total else 10  # whole tenths: no round-off at 30 %
+        due = tenth > last["tenth"] and now - last["t"] >= 5.0
         if not (done >= total or due or now - last["t"] >= 60.0):
             return
-        last["t"], last["frac"] = now, frac
+        last["t"], last["tenth"] = now, tenth
         took = now - start
         left = f", about {_duration(took * (1 - frac) / frac)} to go" if 0 < frac < 1 else ""
         print(f"checking steps: {done}/{total} ({100 * frac:.0f} %), {_duration(took)} elapsed{left}",

@@ -861,11 +861,13 @@ def _normal_derivative_row(x, y, z, nx, ny, nz, planar, out):
 @numba.njit(**_JIT)
 def _boundary_point(i, ox, oy, oz, reach, m, l_face, l_cc, l_box, tri, qb, grid_origin, s, dims, q_max, bstart,
                     bcount, bitems, pcentre, pradius, pwitness, pparent, faces, fnormal, enormal, vnormal, two_d,
-                    nudge, state, qbuf, bpt, nrm, dist):
+                    nudge, state, qbuf, nbuf, bpt, nrm, dist):
     """Closest surface point and pseudo-normal of the origin into bpt[i], nrm[i], dist[i].
 
     Searches the m gathered pieces (every surface point within reach of the origin
-    lies in one of them); if none is that close, the ring search of closest().
+    lies in one of them). If none is that close, or two faces tie at the least
+    distance with different points or normals (two walls equally near), it takes
+    the ring search of closest() instead, so the answer is always closest()'s.
     On a 2-D grid the point and normal are put in the plane z = 0. Returns whether
     the origin lies on the surface (closer than nudge).
     """
@@ -873,6 +875,7 @@ def _boundary_point(i, ox, oy, oz, reach, m, l_face, l_cc, l_box, tri, qb, grid_
     bf = -1
     breg = 0
     bx = by = bz = 0.0
+    tie = False
     for k in range(m):
         r = math.sqrt(l_cc[k]) - l_box[k]  # no point of the piece is nearer than this
         if r > 0.0 and r * r > best:
@@ -884,7 +887,17 @@ def _boundary_point(i, ox, oy, oz, reach, m, l_face, l_cc, l_box, tri, qb, grid_
         if d2 < best:
             best, bf, breg = d2, f, reg
             bx, by, bz = qbuf[0], qbuf[1], qbuf[2]
-    if not (math.sqrt(best) <= reach * (1 - 1e-9)):
+            tie = False
+        elif d2 == best and f != bf and not tie:
+            # Another face exactly as near: harmless if it gives the same point and normal
+            # (a shared edge or corner), otherwise which one wins depends on the search order.
+            _pseudo_normal(bf, breg, faces, fnormal, enormal, vnormal, nbuf[0])
+            _pseudo_normal(f, reg, faces, fnormal, enormal, vnormal, nbuf[1])
+            for q in range(3):
+                if nbuf[0, q] != nbuf[1, q]:
+                    tie = True
+            tie = tie or qbuf[0] != bx or qbuf[1] != by or qbuf[2] != bz
+    if tie or not (math.sqrt(best) <= reach * (1 - 1e-9)):
         _closest_one(ox, oy, oz, qb, grid_origin, s, dims, q_max, np.inf, bstart, bcount, bitems, pcentre, pradius,
                      pwitness, pparent, tri, state, qbuf)
         best, bf, breg = state[0], np.int64(state[1]), np.int64(state[2])
@@ -938,6 +951,7 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
     qb = np.empty(3, dtype=np.int64)
     state = np.empty(6)
     qbuf = np.empty(3)
+    nbuf = np.empty((2, 3))
     for i in range(n):
         ai, aj, ak = anchor[i, 0], anchor[i, 1], anchor[i, 2]
         ox, oy, oz = origin[i, 0], origin[i, 1], origin[i, 2]
@@ -977,7 +991,7 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
                 on_surface = _boundary_point(i, ox, oy, oz, reach, mg, l_face, l_cc, l_box, tri, qb, grid_origin, s,
                                              dims, q_max, bstart, bcount, bitems, pcentre, pradius, pwitness,
                                              pparent, faces, fnormal, enormal, vnormal, two_d, nudge, state, qbuf,
-                                             bpt, nrm, dist)
+                                             nbuf, bpt, nrm, dist)
                 if on_surface:
                     # A centre on the surface sees along it: look from just off it.
                     ox = bpt[i, 0] + nudge * nrm[i, 0]

@@ -48,9 +48,11 @@ Choices (documented defaults)
   ratio of its extreme singular values, taken from the eigenvalues of R^T R
   (accurate to a few digits up to ~1e6; above ~1e7 it is reported as inf).
 * Candidates, visibility and the fit run as one compiled pass over the cells
-  (:func:`ibprep.kernels.stencil_fits`); ``_fit_arrays`` does the same with
-  batched numpy arrays and LAPACK (``numpy.linalg.qr`` on (n, k, m) stacks)
-  and is the reference the compiled pass is tested against.
+  (:func:`ibprep.kernels.stencil_fits`). ``_fit_arrays`` does the same with
+  batched arrays over all stencils, calling the fan crossing test and the WLS
+  solve as separate kernels (each held to its numpy/LAPACK twin); it is the
+  reference the compiled pass's candidate selection, boundary points and row
+  layout are tested against.
 * 2-D grids: points and normals are (n, 3) with z = 0; single-layer 3-D grids
   (``grid.is_planar``) fit in the x–y plane with the 6-term basis and keep the
   cells' z.

@@ -192,20 +192,21 @@ def test_progress_goes_to_a_log_file_as_plain_lines(tmp_path, capsys):
 
 
 def test_progress_lines_are_rate_limited(monkeypatch, capsys):
-    import time
-
     from ibprep import cli
 
-    clock = iter([0.0, 1.0, 2.0, 7.0, 8.0, 70.0, 71.0])
-    monkeypatch.setattr(time, "monotonic", lambda: next(clock))
+    clock = iter([0.0, 1.0, 2.0, 7.0, 8.0, 70.0, 80.0, 90.0, 100.0])
+    monkeypatch.setattr(cli, "_clock", lambda: next(clock))
     update = cli._log_progress()  # start at t = 0
     update(5, 100)  # 1 s, 5 %: too soon and too little
     update(15, 100)  # 2 s, 15 %: a tenth more, but under 5 s since the start
     update(16, 100)  # 7 s: a tenth more and 5 s -> printed
     update(17, 100)  # 8 s: no
     update(18, 100)  # 70 s: a minute since the last line -> printed
+    update(20, 100)  # 80 s: the next whole tenth -> printed
+    update(3, 10)  # 90 s: exactly 30 % of ten chunks (0.2 + 0.1 is not 0.3 in floating point) -> printed
     update(100, 100)  # done -> printed
     lines = capsys.readouterr().err.strip().splitlines()
     assert [ln.split(" (")[0] for ln in lines] == ["checking steps: 16/100", "checking steps: 18/100",
+                                                   "checking steps: 20/100", "checking steps: 3/10",
                                                    "checking steps: 100/100"]
     assert "about" in lines[0] and "to go" in lines[0] and "to go" not in lines[-1]
