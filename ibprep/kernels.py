@@ -23,9 +23,9 @@ LAPACK path to round-off (tests/test_kernels.py gives the tolerances).
 All are compiled with ``fastmath`` off (no re-association, no fused
 multiply-add), numpy's floating-point error model (a division by zero gives
 inf/NaN, as in numpy), single-threaded and releasing the GIL. The first call in
-a fresh environment compiles them (about 5 s for the crossings, 8 s for the
-closest points, 4 s for the WLS solve on the reference machine); numba caches
-the machine code on disk (``__pycache__``), after which loading takes a few
+a fresh environment compiles them (the demo's first run takes about half a
+minute longer than the next ones on the reference machine); numba caches the
+machine code on disk (``__pycache__``), after which loading takes a few
 hundredths of a second.
 """
 
