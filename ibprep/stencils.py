@@ -829,14 +829,15 @@ def _fit_arrays(flat_tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
     nvis = np.zeros(n, dtype=np.int64)
     used_radius = np.zeros(n)
     active = np.arange(n)
-    r = opts.radius
     # Offsets sorted by length: each round's candidates are a prefix of this list, so a
     # grown round only tests the new offsets and keeps the earlier answers.
     all_offs = _offsets(opts.max_radius, planar)
     all_len2 = (all_offs * all_offs).sum(axis=1)
     prev_vis = np.zeros((n, 0), dtype=bool)
-    while active.size:
-        last = r >= opts.max_radius - 1e-9
+    for round_no, r in enumerate(radii):
+        if not active.size:
+            break
+        last = round_no == len(radii) - 1
         n_off = int(np.count_nonzero(all_len2 <= r * r + 1e-9))
         offs = all_offs[:n_off]
         cand = anchor[active, None, :] + offs[None, :, :]  # (na, no, 3)
@@ -874,7 +875,6 @@ def _fit_arrays(flat_tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
             used_radius[rows] = r
         active = active[~done]
         prev_vis = vis[~done]
-        r = min(r + _RADIUS_STEP, opts.max_radius)
 
     k = int(max(1, nvis.max()))
     nb = nb[:, :k]
