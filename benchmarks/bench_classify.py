@@ -190,13 +190,10 @@ def run(quick: bool, repeats: int, steps_only: bool = False):
                     print(lines[-1], flush=True)
         for wname in wing_names:
             base = wing_of_size(wname)
-            # Incremental step in a time loop: pitch 20.0° -> 20.5° -> 21.0°, plunge
-            # +0.25 h per step (the body moves less than one cell). The timed step
-            # starts from the previous Transition (its crossings are reused).
-            m0 = pitched(base, 20.0, 0.05)
-            m1 = pitched(base, 20.5, 0.05 + 0.25 * grid.spacing)
-            m2 = pitched(base, 21.0, 0.05 + 0.50 * grid.spacing)
-            steps.append(step_row(gname, grid, f"wing pitched, {len(base[1]):,}", m0, m1, m2, 3 * repeats))
+            # Incremental steps in a time loop: pitch 20° + 0.5° n, plunge + 0.25 h n
+            # (the body moves less than one cell per step).
+            pose = lambda n, base=base, h=grid.spacing: pitched(base, 20.0 + 0.5 * n, 0.05 + 0.25 * h * n)  # noqa: E731
+            steps.append(step_row(gname, grid, f"wing pitched, {len(base[1]):,}", pose, 3 * repeats))
             print(steps[-1], flush=True)
     # A body whose index box fills much of the grid: a full tagging is then bound
     # by the cells of the box, a step by the surface.
@@ -204,9 +201,8 @@ def run(quick: bool, repeats: int, steps_only: bool = False):
         grid = grid_of_class(GRID_CLASSES[gname])
         centre = np.array([0.5, 0.0, 1.5])
         sph0 = sphere_mesh(0.6, subdivisions=5, centre=centre)
-        sph1 = (sph0[0] + [0.25 * grid.spacing, 0.1 * grid.spacing, 0.0], sph0[1])
-        sph2 = (sph0[0] + [0.50 * grid.spacing, 0.2 * grid.spacing, 0.0], sph0[1])
-        steps.append(step_row(gname, grid, f"sphere R 0.6, {len(sph0[1]):,}", sph0, sph1, sph2, 3 * repeats))
+        pose = lambda n, sph0=sph0, h=grid.spacing: (sph0[0] + [0.25 * h * n, 0.1 * h * n, 0.0], sph0[1])  # noqa: E731
+        steps.append(step_row(gname, grid, f"sphere R 0.6, {len(sph0[1]):,}", pose, 3 * repeats))
         print(steps[-1], flush=True)
     # The demo case's finest level and wing, two poses one solver time step apart
     # (the pair the sweep steps between).
@@ -214,9 +210,11 @@ def run(quick: bool, repeats: int, steps_only: bool = False):
     print(steps[-1], flush=True)
     say("")
     say("Incremental step against a full tagging (`classify` on the same grid and pose), timed side by side "
-        "in one loop (each repeat: full, step, step with `overwrite_previous=True`); best of the repeats, wall "
-        "and CPU (process) time. Wings: pitch 20.5° → 21.0°, plunge +0.25 h, from the previous Transition; "
-        "sphere: moved by (0.25, 0.1, 0) h. Every step result is checked equal to the full tagging:")
+        "in one time loop: at every instant a full tagging, a step from the previous Transition (new tag array) "
+        "and a step with `overwrite_previous=True` (one array updated in place) are timed in turn; medians over "
+        f"{3 * repeats} instants, wall and CPU (process) time. Wings: pitch 20° + 0.5° per step, plunge +0.25 h "
+        "per step; sphere: moved by (0.25, 0.1, 0) h per step; demo: one solver time step per step. Every step "
+        "result is checked equal to the full tagging:")
     say("")
     say("| grid | cells | body, triangles | full [ms] wall / CPU | step [ms] wall / CPU | step / full | "
         "step, overwrite [ms] wall / CPU | overwrite / full | full / step Gcells/s | fresh / covered |")
@@ -225,45 +223,51 @@ def run(quick: bool, repeats: int, steps_only: bool = False):
     return lines
 
 
-def time_step(grid, m0, m1, m2, repeats: int):
-    """Best-of wall and CPU seconds of classify(m2), step_tags(previous, m2) and the same with overwrite_previous.
+def time_step(grid, pose, steps: int):
+    """Median wall and CPU seconds per instant of a full tagging, a step, and an overwriting step.
 
-    ``previous`` is the Transition of the step m0 -> m1 (crossings cached), rebuilt
-    untimed before each overwriting step, which spends it. The three are timed in
-    turn inside each repeat, so machine load affects all alike.
+    A time loop over the poses ``pose(0)``, ``pose(1)``, … ``pose(steps + 1)``: at
+    every instant n >= 2, ``classify(pose(n))`` (full), ``step_tags`` from the
+    chain's previous Transition (step, a new tag array each time) and the same on
+    a second chain with ``overwrite_previous=True`` (one tag array updated in
+    place, as a solver's time loop keeps only the latest step) are timed in turn,
+    so machine load affects all alike. Every step is checked equal to the full
+    tagging. Returns ``({name: (wall, cpu)}, last Transition)`` with medians over the
+    instants.
     """
+    m0, m1 = pose(0), pose(1)
     tags0 = classify(m0, grid)
-    tr1 = step_tags(tags0, m1, grid, previous_surface=m0)
-    best = {name: [np.inf, np.inf] for name in ("full", "step", "overwrite")}
-    out = {}
-    for _ in range(repeats):
-        spare = step_tags(tags0, m1, grid, previous_surface=m0)
+    chain = {"step": step_tags(tags0, m1, grid, previous_surface=m0),
+             "overwrite": step_tags(tags0.copy(), m1, grid, previous_surface=m0)}
+    times = {name: [] for name in ("full", "step", "overwrite")}
+    for n in range(2, steps + 2):
+        m = pose(n)
+        out = {}
         for name, fn in (
-            ("full", lambda: classify(m2, grid)),
-            ("step", lambda: step_tags(tr1, m2, grid)),
-            ("overwrite", lambda: step_tags(spare, m2, grid, overwrite_previous=True)),
+            ("full", lambda: classify(m, grid)),
+            ("step", lambda: step_tags(chain["step"], m, grid)),
+            ("overwrite", lambda: step_tags(chain["overwrite"], m, grid, overwrite_previous=True)),
         ):
             w, c = time.perf_counter(), time.process_time()
             out[name] = fn()
-            w, c = time.perf_counter() - w, time.process_time() - c
-            best[name][0] = min(best[name][0], w)
-            best[name][1] = min(best[name][1], c)
-    full = out["full"]
-    for name in ("step", "overwrite"):
-        assert np.array_equal(out[name].tags, full), "stepping must equal a full tagging"
-    return best, out["step"]
+            times[name].append((time.perf_counter() - w, time.process_time() - c))
+        for name in ("step", "overwrite"):
+            assert np.array_equal(out[name].tags, out["full"]), "stepping must equal a full tagging"
+            chain[name] = out[name]
+    med = {name: tuple(np.median(np.array(v), axis=0)) for name, v in times.items()}
+    return med, chain["step"]
 
 
-def step_row(gname, grid, body, m0, m1, m2, repeats):
+def step_row(gname, grid, body, pose, steps):
     """One markdown row of the stepping table."""
-    best, tr = time_step(grid, m0, m1, m2, repeats)
-    (fw, fc), (sw, sc), (ow, oc) = best["full"], best["step"], best["overwrite"]
+    med, tr = time_step(grid, pose, steps)
+    (fw, fc), (sw, sc), (ow, oc) = med["full"], med["step"], med["overwrite"]
     return (f"| {gname} | {grid.size:,} | {body} | {fw * 1e3:.2f} / {fc * 1e3:.2f} | {sw * 1e3:.2f} / {sc * 1e3:.2f} | "
             f"**{sw / fw:.2f}** | {ow * 1e3:.2f} / {oc * 1e3:.2f} | **{ow / fw:.2f}** | "
             f"{grid.size / fw / 1e9:.1f} / {grid.size / sw / 1e9:.1f} | {tr.fresh.size:,} / {tr.covered.size:,} |")
 
 
-def demo_step_row(repeats):
+def demo_step_row(steps):
     """The stepping row of the demo case's finest level (21.8 M cells) and wing."""
     from ibprep.case import parse_case
     from ibprep.demo import DEMO_CASE
@@ -272,8 +276,8 @@ def demo_step_row(repeats):
     grid = case.grid.finest
     dt = case.time.step
     t0 = 0.3 * case.motion.period
-    m0, m1, m2 = (case.world_surface(t0 + n * dt) for n in range(3))
-    return step_row("demo finest", grid, f"demo wing (t = 0.3 T, dt), {len(m0[1]):,}", m0, m1, m2, repeats)
+    pose = lambda n: case.world_surface(t0 + n * dt)  # noqa: E731
+    return step_row("demo finest", grid, f"demo wing (from t = 0.3 T, dt), {len(pose(0)[1]):,}", pose, steps)
 
 
 def main(argv=None) -> int:

@@ -451,6 +451,8 @@ def _crossings_nb(vx, vy, vz, f0, f1, f2, xs, ys, zs):
         right = dz * qy
         det = left - right
         if not (abs(det) > _CCW_ERRBOUND * (abs(left) + abs(right))):
+            if (y0 == y1 and z0 == z1) or (y1 == y2 and z1 == z2) or (y2 == y0 and z2 == z0):
+                continue  # two vertices coincide in projection (an edge along x): exactly zero area
             left0 = dy == 0.0 or qz == 0.0
             right0 = dz == 0.0 or qy == 0.0
             if left0 and right0:
@@ -1006,9 +1008,11 @@ def _row_sort_nb(i, j, k, w, nz):
 def _changed_nb(ni, nj, nk, nw, oi, oj, ok, ow, nx, ny, nz):
     """Walk two row-sorted crossing sets row by row; cells whose solid membership differs.
 
-    Returns ``(fresh, covered, any_solid_new, open_rows_new)``: unsorted C-order
-    flat indices, whether any centre is solid for the new set, and the number of
-    rows whose new crossings do not sum to zero (as :func:`_warn_if_open` counts them).
+    Returns ``(fresh, covered, any_solid_new, open_rows_new, box)``: sorted C-order
+    flat indices, whether any centre is solid for the new set, the number of rows
+    whose new crossings do not sum to zero (as :func:`_warn_if_open` counts them),
+    and the inclusive index bounds ``(i_lo, i_hi, j_lo, j_hi, k_lo, k_hi)`` of the
+    changed cells (``i_lo > i_hi`` when none changed).
     """
     nn, no = ni.size, oi.size
     nyz = ny * nz
@@ -1069,26 +1073,41 @@ def _changed_nb(ni, nj, nk, nw, oi, oj, ok, ow, nx, ny, nz):
                 run_row[runs] = row
                 run_fresh[runs] = co != 0
                 runs += 1
-    n_fresh = 0
-    n_covered = 0
+    # Counting sort by the cell's position along the row (the slowest C-order
+    # index): rows are visited in increasing order, so each bucket fills sorted
+    # and the output is in C order without a comparison sort.
+    start_f = np.zeros(nx + 1, np.int64)
+    start_c = np.zeros(nx + 1, np.int64)
     for r in range(runs):
-        if run_fresh[r]:
-            n_fresh += run_hi[r] - run_lo[r]
-        else:
-            n_covered += run_hi[r] - run_lo[r]
-    fresh = np.empty(n_fresh, np.int64)
-    covered = np.empty(n_covered, np.int64)
-    n_fresh = 0
-    n_covered = 0
-    for r in range(runs):
+        start = start_f if run_fresh[r] else start_c
         for c in range(run_lo[r], run_hi[r]):
-            if run_fresh[r]:
-                fresh[n_fresh] = c * nyz + run_row[r]
-                n_fresh += 1
-            else:
-                covered[n_covered] = c * nyz + run_row[r]
-                n_covered += 1
-    return fresh, covered, any_solid, open_rows
+            start[c + 1] += 1
+    for c in range(nx):
+        start_f[c + 1] += start_f[c]
+        start_c[c + 1] += start_c[c]
+    fresh = np.empty(start_f[nx], np.int64)
+    covered = np.empty(start_c[nx], np.int64)
+    # box: index bounds of the changed cells (inclusive), j and k from the row.
+    box = np.array([nx, -1, ny, -1, nz, -1], np.int64)
+    for r in range(runs):
+        row = run_row[r]
+        j = row // nz
+        k = row - j * nz
+        box[0] = min(box[0], run_lo[r])
+        box[1] = max(box[1], run_hi[r] - 1)
+        box[2] = min(box[2], j)
+        box[3] = max(box[3], j)
+        box[4] = min(box[4], k)
+        box[5] = max(box[5], k)
+        if run_fresh[r]:
+            for c in range(run_lo[r], run_hi[r]):
+                fresh[start_f[c]] = c * nyz + row
+                start_f[c] += 1
+        else:
+            for c in range(run_lo[r], run_hi[r]):
+                covered[start_c[c]] = c * nyz + row
+                start_c[c] += 1
+    return fresh, covered, any_solid, open_rows, box
 
 
 def _row_sorted(cr: _Crossings, shape3) -> _Crossings:
@@ -1098,17 +1117,18 @@ def _row_sorted(cr: _Crossings, shape3) -> _Crossings:
     return _Crossings(*_row_sort_nb(cr.i, cr.j, cr.k, cr.w, shape3[2]), row_sorted=True)
 
 
-def _changed_cells(new: _Crossings, old: _Crossings, shape3):
+def _changed_cells(new: _Crossings, old: _Crossings, shape3, with_box: bool = False):
     """Cells whose solid membership differs between two crossing sets (compiled twin of :func:`_changed_runs`).
 
     Returns ``(fresh_flat, covered_flat, any_solid_now)`` as :func:`_changed_runs`
-    does, and the number of rows crossing ``new`` unevenly (see :func:`_warn_if_open`).
+    does, and the number of rows crossing ``new`` unevenly (see :func:`_warn_if_open`);
+    with ``with_box``, also the inclusive index bounds of the changed cells.
     """
     nx, ny, nz = shape3
     new, old = _row_sorted(new, shape3), _row_sorted(old, shape3)
-    fresh, covered, any_solid, open_rows = _changed_nb(new.i, new.j, new.k, new.w, old.i, old.j, old.k, old.w, nx, ny, nz)
-    fresh.sort()
-    covered.sort()
+    fresh, covered, any_solid, open_rows, box = _changed_nb(new.i, new.j, new.k, new.w, old.i, old.j, old.k, old.w, nx, ny, nz)
+    if with_box:
+        return fresh, covered, bool(any_solid), int(open_rows), box
     return fresh, covered, bool(any_solid), int(open_rows)
 
 
@@ -1167,13 +1187,9 @@ def _retag(flat_tags: np.ndarray, fresh: np.ndarray, covered: np.ndarray, shape3
 
 
 @numba.njit(**_JIT)
-def _set_interface_nb(flat_tags, cell, partner, plain, nx, ny, nz):
-    """Tag a non-partner cell INTERFACE if a face neighbour in the grid is a partner cell, else ``plain``."""
+def _set_interface_nb(flat_tags, cell, i, j, k, partner, plain, nx, ny, nz):
+    """Tag non-partner cell (i, j, k) INTERFACE if a face neighbour in the grid is a partner cell, else ``plain``."""
     nyz = ny * nz
-    i = cell // nyz
-    rem = cell - i * nyz
-    j = rem // nz
-    k = rem - j * nz
     found = (
         (i > 0 and flat_tags[cell - nyz] == partner)
         or (i < nx - 1 and flat_tags[cell + nyz] == partner)
@@ -1186,51 +1202,80 @@ def _set_interface_nb(flat_tags, cell, partner, plain, nx, ny, nz):
 
 
 @numba.njit(**_JIT)
-def _retag_nb(flat_tags, joined, left, partner, plain, nx, ny, nz):
-    """Compiled twin of :func:`_retag`'s updates (same rules, one cell at a time)."""
+def _recheck_nb(flat_tags, cell, i, j, k, partner, plain, nx, ny, nz):
+    """Re-check cell (i, j, k) that left the partner side, then its interface face neighbours."""
     nyz = ny * nz
-    steps = np.array([nyz, nz, 1])
-    sizes = np.array([nx, ny, nz])
+    _set_interface_nb(flat_tags, cell, i, j, k, partner, plain, nx, ny, nz)
+    if i > 0 and flat_tags[cell - nyz] == 2:
+        _set_interface_nb(flat_tags, cell - nyz, i - 1, j, k, partner, plain, nx, ny, nz)
+    if i < nx - 1 and flat_tags[cell + nyz] == 2:
+        _set_interface_nb(flat_tags, cell + nyz, i + 1, j, k, partner, plain, nx, ny, nz)
+    if j > 0 and flat_tags[cell - nz] == 2:
+        _set_interface_nb(flat_tags, cell - nz, i, j - 1, k, partner, plain, nx, ny, nz)
+    if j < ny - 1 and flat_tags[cell + nz] == 2:
+        _set_interface_nb(flat_tags, cell + nz, i, j + 1, k, partner, plain, nx, ny, nz)
+    if k > 0 and flat_tags[cell - 1] == 2:
+        _set_interface_nb(flat_tags, cell - 1, i, j, k - 1, partner, plain, nx, ny, nz)
+    if k < nz - 1 and flat_tags[cell + 1] == 2:
+        _set_interface_nb(flat_tags, cell + 1, i, j, k + 1, partner, plain, nx, ny, nz)
+
+
+@numba.njit(**_JIT)
+def _retag_nb(flat_tags, joined, left, partner, plain, nx, ny, nz):
+    """Compiled twin of :func:`_retag`'s updates (same rules, one cell at a time).
+
+    Each cell's (i, j, k) is found once; its neighbours' follow by offsets.
+    """
+    nyz = ny * nz
     for cell in joined:
-        rem = cell
-        for a in range(3):
-            c = rem // steps[a]
-            rem -= c * steps[a]
-            for d in (-1, 1):
-                if 0 <= c + d < sizes[a]:
-                    nb = cell + d * steps[a]
-                    if flat_tags[nb] != partner:
-                        flat_tags[nb] = 2
+        i = cell // nyz
+        rem = cell - i * nyz
+        j = rem // nz
+        k = rem - j * nz
+        if i > 0 and flat_tags[cell - nyz] != partner:
+            flat_tags[cell - nyz] = 2
+        if i < nx - 1 and flat_tags[cell + nyz] != partner:
+            flat_tags[cell + nyz] = 2
+        if j > 0 and flat_tags[cell - nz] != partner:
+            flat_tags[cell - nz] = 2
+        if j < ny - 1 and flat_tags[cell + nz] != partner:
+            flat_tags[cell + nz] = 2
+        if k > 0 and flat_tags[cell - 1] != partner:
+            flat_tags[cell - 1] = 2
+        if k < nz - 1 and flat_tags[cell + 1] != partner:
+            flat_tags[cell + 1] = 2
     for cell in left:
-        _set_interface_nb(flat_tags, cell, partner, plain, nx, ny, nz)
-        rem = cell
-        for a in range(3):
-            c = rem // steps[a]
-            rem -= c * steps[a]
-            for d in (-1, 1):
-                if 0 <= c + d < sizes[a]:
-                    nb = cell + d * steps[a]
-                    if flat_tags[nb] == 2:
-                        _set_interface_nb(flat_tags, nb, partner, plain, nx, ny, nz)
+        i = cell // nyz
+        rem = cell - i * nyz
+        j = rem // nz
+        k = rem - j * nz
+        _recheck_nb(flat_tags, cell, i, j, k, partner, plain, nx, ny, nz)
 
 
-def _retag_compiled(flat_tags: np.ndarray, fresh: np.ndarray, covered: np.ndarray, shape3, interface: str) -> tuple[slice, ...]:
-    """:func:`_retag` (same arguments, same updates in place, same returned box) on the compiled kernel."""
+def _retag_compiled(
+    flat_tags: np.ndarray, fresh: np.ndarray, covered: np.ndarray, shape3, interface: str, box=None
+) -> tuple[slice, ...]:
+    """:func:`_retag` (same arguments, same updates in place, same returned box) on the compiled kernel.
+
+    ``box``: the inclusive index bounds of the changed cells when the caller has
+    them (as :func:`_changed_nb` returns them); found from the cells otherwise.
+    """
     if interface == "fluid-side":
         joined, left, partner, plain = covered, fresh, CellTag.SOLID, CellTag.FLUID
     else:
         joined, left, partner, plain = fresh, covered, CellTag.FLUID, CellTag.SOLID
     nx, ny, nz = shape3
     _retag_nb(flat_tags, joined, left, np.uint8(partner), np.uint8(plain), nx, ny, nz)
-    ends = [a[[0, -1]] for a in (fresh, covered) if a.size]  # sorted: first and last cell only bound i
-    i_lo = min(int(e[0]) for e in ends) // (ny * nz)
-    i_hi = max(int(e[1]) for e in ends) // (ny * nz)
-    rem = np.concatenate([fresh, covered]) % (ny * nz)
-    j, k = np.divmod(rem, nz)
-    return (
-        slice(max(i_lo - 1, 0), min(i_hi + 2, nx)),
-        slice(max(int(j.min()) - 1, 0), min(int(j.max()) + 2, ny)),
-        slice(max(int(k.min()) - 1, 0), min(int(k.max()) + 2, nz)),
+    if box is None:
+        ends = [a[[0, -1]] for a in (fresh, covered) if a.size]  # sorted: first and last cell only bound i
+        rem = np.concatenate([fresh, covered]) % (ny * nz)
+        j, k = np.divmod(rem, nz)
+        box = (
+            min(int(e[0]) for e in ends) // (ny * nz), max(int(e[1]) for e in ends) // (ny * nz),
+            int(j.min()), int(j.max()), int(k.min()), int(k.max()),
+        )
+    return tuple(
+        slice(max(int(lo) - 1, 0), min(int(hi) + 2, n)) for lo, hi, n in zip(box[0::2], box[1::2], shape3)
     )
 
 
@@ -1339,7 +1384,7 @@ def step_tags(
         )
     v_now, f_now = as_triangles(surface_now)
     new = _row_sorted(_crossings(v_now, f_now, *axes), shape3)  # kept sorted for the next step
-    fresh, covered, any_solid, open_rows = _changed_cells(new, old, shape3)
+    fresh, covered, any_solid, open_rows, changed_box = _changed_cells(new, old, shape3, with_box=True)
     _warn_open_rows(open_rows)
     if overwrite_previous:
         tags = prev.reshape(shape3)
@@ -1359,7 +1404,7 @@ def step_tags(
     flat_tags[covered] = CellTag.SOLID
     flat_tags[fresh] = CellTag.FLUID
     if fresh.size or covered.size:
-        region3 = _retag_compiled(flat_tags, fresh, covered, shape3, interface)
+        region3 = _retag_compiled(flat_tags, fresh, covered, shape3, interface, changed_box)
     else:
         region3 = (slice(0, 0),) * 3
     outside = not any_solid

@@ -148,12 +148,15 @@ def _world(task: SweepTask, t: float):
 def _check_pair(task: SweepTask, grid: Grid, k: int, t: float, previous, prev_surface):
     """Tags at t (incrementally from the previous pair when there is one), then at t + dt, then stencils."""
     s0 = _world(task, t)
+    # One tag array per chunk, updated in place from pose to pose: the previous
+    # pair's Transition and the state at t are not used again.
     if previous is None:
         state = classify(s0, grid, interface=task.interface)
     else:
-        state = step_tags(previous, s0, grid, previous_surface=prev_surface, interface=task.interface)
+        state = step_tags(previous, s0, grid, previous_surface=prev_surface, interface=task.interface,
+                          overwrite_previous=True)
     s1 = _world(task, t + task.dt)
-    tr = step_tags(state, s1, grid, previous_surface=s0, interface=task.interface)
+    tr = step_tags(state, s1, grid, previous_surface=s0, interface=task.interface, overwrite_previous=True)
     tags = tr.tags
     if tr.fresh.size and task.interface == "fluid-side":
         # Fresh cells need a reconstruction too: build their stencils with the interface cells.
