@@ -78,6 +78,7 @@ from __future__ import annotations
 
 import math
 import os
+import threading
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -197,6 +198,22 @@ class StencilSummary:
         return {k: getattr(self, k) for k in self.__dataclass_fields__}
 
 
+# Set (per thread) while a Stencils is made from arrays nobody else holds.
+_ADOPTING = threading.local()
+
+
+def _adopted(**fields) -> "Stencils":
+    """A :class:`Stencils` that takes over freshly made arrays instead of copying them.
+
+    Only for arrays no caller can still write to (built here, or just read from a file).
+    """
+    _ADOPTING.on = True
+    try:
+        return Stencils(**fields)
+    finally:
+        _ADOPTING.on = False
+
+
 _ARRAY_FIELDS = (
     "cells",
     "neighbours",
@@ -265,8 +282,11 @@ class Stencils:
             "n_visible": np.int64,
         }
         arrays = {}
+        # Copies, so the table stays as built whatever the caller does with its
+        # arrays; not for arrays this module has just made and hands over (_adopted).
+        copy = True if not getattr(_ADOPTING, "on", False) else None
         for name in _ARRAY_FIELDS:
-            a = np.array(getattr(self, name), dtype=dtypes.get(name, np.float64), copy=True)
+            a = np.array(getattr(self, name), dtype=dtypes.get(name, np.float64), copy=copy)
             a.setflags(write=False)
             arrays[name] = a
         n = arrays["cells"].shape[0]
@@ -412,7 +432,7 @@ def load_stencils(path) -> Stencils:
         if missing:
             raise InputError(f"{path!r} is not a stencil table: missing {', '.join(missing)}; write it with Stencils.save")
         kw = {name: data[name] for name in _ARRAY_FIELDS}
-        return Stencils(
+        return _adopted(
             **kw,
             bc=str(data["bc"]),
             interface=str(data["interface"]),
@@ -663,7 +683,7 @@ def build_stencils(
     if two_d:
         lower3[2] = -0.5 * h  # the single layer's centre sits at z = 0
 
-    cells = np.flatnonzero(flat_tags == CellTag.INTERFACE).astype(np.int64)
+    cells = np.flatnonzero(flat_tags == np.uint8(CellTag.INTERFACE)).astype(np.int64)
     n = cells.size
     lim = opts.limits
     min_ok_visible = lim.min_visible if lim.min_visible is not None else int(math.ceil(1.5 * m))
@@ -775,7 +795,7 @@ def build_stencils(
         & (minw >= lim.min_weight)
     )
     # On 2-D grids flat indices over (nx, ny, 1) equal those over (nx, ny).
-    return Stencils(
+    return _adopted(
         cells=cells,
         neighbours=nb,
         weights=wn,

@@ -107,8 +107,8 @@ def _centre(grid: Grid, flat: int) -> tuple:
 
 def _step_figures(index: int, time: float, grid: Grid, tr, stencils, fresh_mask_cells) -> StepResult:
     tags = tr.tags
-    n_solid = int(np.count_nonzero(tags == CellTag.SOLID))
-    n_interface = int(np.count_nonzero(tags == CellTag.INTERFACE))
+    n_solid = int(np.count_nonzero(tags == np.uint8(CellTag.SOLID)))
+    n_interface = int(np.count_nonzero(tags == np.uint8(CellTag.INTERFACE)))
     n = len(stencils.cells)
     bad = ~stencils.ok
     if n:

@@ -339,6 +339,23 @@ def test_save_load_round_trip(tmp_path):
     assert back.grid_shape == grid.shape and back.spacing == grid.spacing
 
 
+def test_tables_are_read_only_and_keep_their_values():
+    # Built and loaded tables take over their fresh arrays; all arrays are read-only.
+    # A table made from a caller's arrays copies them: changing those later does not
+    # change the table.
+    grid, loop, tags = _circle_case(6)
+    st = build_stencils(tags, grid, loop)
+    assert not any(getattr(st, name).flags.writeable for name in ("cells", "neighbours", "weights", "condition"))
+    fields = {name: np.array(getattr(st, name)) for name in (
+        "cells", "neighbours", "weights", "boundary_point", "boundary_normal", "boundary_weight",
+        "condition", "ok", "n_visible", "weight_bound", "min_weight")}
+    mine = Stencils(**fields, grid_lower=grid.lower, grid_shape=grid.shape, spacing=grid.spacing)
+    fields["weights"][:] = 99.0
+    fields["cells"][:] = -1
+    np.testing.assert_array_equal(mine.weights, st.weights)
+    np.testing.assert_array_equal(mine.cells, st.cells)
+
+
 def test_atomic_save_keeps_existing_file_on_failure(tmp_path, monkeypatch):
     grid, loop, tags = _circle_case(6)
     st = build_stencils(tags, grid, loop)
