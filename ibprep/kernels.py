@@ -36,7 +36,7 @@ import math
 import numba
 import numpy as np
 
-from .proximity import ClosestPoints
+from .proximity import ClosestPoints, _closest_on_triangle, _dot3  # noqa: F401 (_dot3 used by kernels below)
 
 __all__ = ["segments_cross_fan", "closest", "wls_value_weights", "stencil_fits"]
 
@@ -50,14 +50,6 @@ _GRAM_RTOL = 1e-14
 
 
 # ------------------------------------------------------------- exact tests
-@numba.njit(**_JIT)
-def _dot3(ax, ay, az, bx, by, bz):
-    # The order numpy's einsum("ij,ij->i") sums three products in on this build (two
-    # SIMD lanes, the third term joining lane 0): (x + z) + y; no fused multiply-add.
-    # tests/test_kernels.py::test_dot3_matches_einsum guards it.
-    return (ax * bx + az * bz) + ay * by
-
-
 @numba.njit(**_JIT)
 def _segment_crosses(p0x, p0y, p0z, p1x, p1y, p1z, tri):
     """Möller–Trumbore on one segment and one (3, 3) triangle; proximity.segments_cross_triangles."""
@@ -85,65 +77,6 @@ def _segment_crosses(p0x, p0y, p0z, p1x, p1y, p1z, tri):
     t = _dot3(e2x, e2y, e2z, qx, qy, qz) * inv
     s = _BARY_SLACK
     return (u >= -s) and (v >= -s) and (u + v <= 1 + s) and (t >= 0.0) and (t <= 1.0)
-
-
-@numba.njit(**_JIT)
-def _closest_on_triangle(px, py, pz, tri, out):
-    """Ericson §5.1.5 on one point and one triangle, as proximity.closest_point_on_triangles.
-
-    Writes the closest point to out[0:3] and returns the region code.
-    """
-    ax, ay, az = tri[0, 0], tri[0, 1], tri[0, 2]
-    bx, by, bz = tri[1, 0], tri[1, 1], tri[1, 2]
-    cx, cy, cz = tri[2, 0], tri[2, 1], tri[2, 2]
-    abx, aby, abz = bx - ax, by - ay, bz - az
-    acx, acy, acz = cx - ax, cy - ay, cz - az
-    apx, apy, apz = px - ax, py - ay, pz - az
-    bpx, bpy, bpz = px - bx, py - by, pz - bz
-    cpx, cpy, cpz = px - cx, py - cy, pz - cz
-    d1 = _dot3(abx, aby, abz, apx, apy, apz)
-    d2 = _dot3(acx, acy, acz, apx, apy, apz)
-    d3 = _dot3(abx, aby, abz, bpx, bpy, bpz)
-    d4 = _dot3(acx, acy, acz, bpx, bpy, bpz)
-    d5 = _dot3(abx, aby, abz, cpx, cpy, cpz)
-    d6 = _dot3(acx, acy, acz, cpx, cpy, cpz)
-    vc = d1 * d4 - d3 * d2
-    vb = d5 * d2 - d1 * d6
-    va = d3 * d6 - d5 * d4
-    # Priority of the numpy version (its later assignments win).
-    if (d1 <= 0) and (d2 <= 0):
-        region = _VA
-        v, w = 0.0, 0.0
-    elif (d3 >= 0) and (d4 <= d3):
-        region = _VB
-        v, w = 1.0, 0.0
-    elif (vc <= 0) and (d1 >= 0) and (d3 <= 0):
-        region = _EAB
-        v = d1 / (d1 - d3) if d1 - d3 != 0 else 0.0
-        w = 0.0
-    elif (d6 >= 0) and (d5 <= d6):
-        region = _VC
-        v, w = 0.0, 1.0
-    elif (vb <= 0) and (d2 >= 0) and (d6 <= 0):
-        region = _ECA
-        v = 0.0
-        w = d2 / (d2 - d6) if d2 - d6 != 0 else 0.0
-    elif (va <= 0) and ((d4 - d3) >= 0) and ((d5 - d6) >= 0):
-        region = _EBC
-        e43 = d4 - d3
-        e56 = d5 - d6
-        t_bc = e43 / (e43 + e56) if e43 + e56 != 0 else 0.0
-        v = 1.0 - t_bc
-        w = t_bc
-    else:
-        region = _FACE
-        denom = va + vb + vc
-        v = vb / denom if denom != 0 else 0.0
-        w = vc / denom if denom != 0 else 0.0
-    out[0] = ax + v * abx + w * acx
-    out[1] = ay + v * aby + w * acy
-    out[2] = az + v * abz + w * acz
-    return region
 
 
 # --------------------------------------------------------- fan crossings

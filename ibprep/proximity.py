@@ -27,6 +27,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 
+import numba
 import numpy as np
 
 from .errors import InputError
@@ -225,6 +226,281 @@ def _pieces(tri: np.ndarray, ids: np.ndarray, target: float):
     return ids[owner].astype(np.int64), centre, radius, centre - half, centre + half
 
 
+# --------------------------------------------------------------- compiled index tables
+# The same pieces, witnesses and buckets as the numpy construction in
+# TriangleIndex.__post_init__, one piece at a time with the same floating-point
+# expressions in the same order (fastmath off): the tables are equal bit for bit
+# (tests/test_proximity.py). The numpy construction stays as the reference.
+_JIT = dict(cache=True, nogil=True, fastmath=False, error_model="numpy")
+_COMPILED_INDEX = True
+
+
+@numba.njit(**_JIT)
+def _dot3(ax, ay, az, bx, by, bz):
+    # The order numpy's einsum("ij,ij->i") sums three products in on this build (two
+    # SIMD lanes, the third term joining lane 0): (x + z) + y; no fused multiply-add.
+    # tests/test_kernels.py::test_dot3_matches_einsum guards it.
+    return (ax * bx + az * bz) + ay * by
+
+
+@numba.njit(**_JIT)
+def _closest_on_triangle(px, py, pz, tri, out):
+    """Ericson §5.1.5 on one point and one triangle, as proximity.closest_point_on_triangles.
+
+    Writes the closest point to out[0:3] and returns the region code.
+    """
+    ax, ay, az = tri[0, 0], tri[0, 1], tri[0, 2]
+    bx, by, bz = tri[1, 0], tri[1, 1], tri[1, 2]
+    cx, cy, cz = tri[2, 0], tri[2, 1], tri[2, 2]
+    abx, aby, abz = bx - ax, by - ay, bz - az
+    acx, acy, acz = cx - ax, cy - ay, cz - az
+    apx, apy, apz = px - ax, py - ay, pz - az
+    bpx, bpy, bpz = px - bx, py - by, pz - bz
+    cpx, cpy, cpz = px - cx, py - cy, pz - cz
+    d1 = _dot3(abx, aby, abz, apx, apy, apz)
+    d2 = _dot3(acx, acy, acz, apx, apy, apz)
+    d3 = _dot3(abx, aby, abz, bpx, bpy, bpz)
+    d4 = _dot3(acx, acy, acz, bpx, bpy, bpz)
+    d5 = _dot3(abx, aby, abz, cpx, cpy, cpz)
+    d6 = _dot3(acx, acy, acz, cpx, cpy, cpz)
+    vc = d1 * d4 - d3 * d2
+    vb = d5 * d2 - d1 * d6
+    va = d3 * d6 - d5 * d4
+    # Priority of the numpy version (its later assignments win).
+    if (d1 <= 0) and (d2 <= 0):
+        region = _VA
+        v, w = 0.0, 0.0
+    elif (d3 >= 0) and (d4 <= d3):
+        region = _VB
+        v, w = 1.0, 0.0
+    elif (vc <= 0) and (d1 >= 0) and (d3 <= 0):
+        region = _EAB
+        v = d1 / (d1 - d3) if d1 - d3 != 0 else 0.0
+        w = 0.0
+    elif (d6 >= 0) and (d5 <= d6):
+        region = _VC
+        v, w = 0.0, 1.0
+    elif (vb <= 0) and (d2 >= 0) and (d6 <= 0):
+        region = _ECA
+        v = 0.0
+        w = d2 / (d2 - d6) if d2 - d6 != 0 else 0.0
+    elif (va <= 0) and ((d4 - d3) >= 0) and ((d5 - d6) >= 0):
+        region = _EBC
+        e43 = d4 - d3
+        e56 = d5 - d6
+        t_bc = e43 / (e43 + e56) if e43 + e56 != 0 else 0.0
+        v = 1.0 - t_bc
+        w = t_bc
+    else:
+        region = _FACE
+        denom = va + vb + vc
+        v = vb / denom if denom != 0 else 0.0
+        w = vc / denom if denom != 0 else 0.0
+    out[0] = ax + v * abx + w * acx
+    out[1] = ay + v * aby + w * acy
+    out[2] = az + v * abz + w * acz
+    return region
+
+
+@numba.njit(**_JIT)
+def _pieces_nb(tri, ids, target, box_lo, box_hi):
+    """:func:`_pieces`, the witnesses and the filter of the numpy construction, compiled.
+
+    Returns parent (p,), centre (p, 3), radius (p,), lower (p, 3), upper (p, 3),
+    witness (p, 3) of the pieces kept (box overlapping [box_lo, box_hi], witness
+    inside the piece's sphere), in the numpy construction's order.
+    """
+    n = ids.size
+    q1s = np.empty(n, np.int64)
+    q2s = np.empty(n, np.int64)
+    frame = np.empty((n, 11))  # a (3), e1 (3), e2 (3), L, w
+    total = 0
+    for r in range(n):
+        t = tri[ids[r]]
+        best = -1.0
+        k = 0
+        for e in range(3):
+            f = (e + 1) % 3
+            dx, dy, dz = t[f, 0] - t[e, 0], t[f, 1] - t[e, 1], t[f, 2] - t[e, 2]
+            ln = math.sqrt(dx * dx + dy * dy + dz * dz)
+            if ln > best:
+                best, k = ln, e
+        a0, a1, a2 = t[k, 0], t[k, 1], t[k, 2]
+        b, c = (k + 1) % 3, (k + 2) % 3
+        abx, aby, abz = t[b, 0] - a0, t[b, 1] - a1, t[b, 2] - a2
+        L = math.sqrt(abx * abx + aby * aby + abz * abz)
+        e1x, e1y, e1z = (abx / L, aby / L, abz / L) if L > 0 else (0.0, 0.0, 0.0)
+        acx, acy, acz = t[c, 0] - a0, t[c, 1] - a1, t[c, 2] - a2
+        pr = _dot3(acx, acy, acz, e1x, e1y, e1z)
+        px, py, pz = acx - pr * e1x, acy - pr * e1y, acz - pr * e1z
+        w = math.sqrt(px * px + py * py + pz * pz)
+        e2x, e2y, e2z = (px / w, py / w, pz / w) if w > 0 else (0.0, 0.0, 0.0)
+        q1 = min(max(int(math.ceil(L / target)), 1), 64)
+        q2 = min(max(int(math.ceil(w / target)), 1), 64)
+        q1s[r], q2s[r] = q1, q2
+        fr = frame[r]
+        fr[0], fr[1], fr[2], fr[3], fr[4], fr[5] = a0, a1, a2, e1x, e1y, e1z
+        fr[6], fr[7], fr[8], fr[9], fr[10] = e2x, e2y, e2z, L, w
+        total += q1 * q2
+    parent = np.empty(total, np.int64)
+    pc = np.empty((total, 3))
+    prad = np.empty(total)
+    plo = np.empty((total, 3))
+    phi = np.empty((total, 3))
+    wq = np.empty((total, 3))
+    out = np.empty(3)
+    m = 0
+    for r in range(n):
+        fr = frame[r]
+        a0, a1, a2, e1x, e1y, e1z = fr[0], fr[1], fr[2], fr[3], fr[4], fr[5]
+        e2x, e2y, e2z, L, w = fr[6], fr[7], fr[8], fr[9], fr[10]
+        q1, q2 = q1s[r], q2s[r]
+        dx = L / q1
+        dy = w / q2
+        rad = 0.5 * math.sqrt(dx * dx + dy * dy) * (1 + 1e-12) + 1e-15 * max(L, 1.0)
+        hx = (abs(e1x) * (0.5 * dx) + abs(e2x) * (0.5 * dy)) * (1 + 1e-12) + 1e-15
+        hy = (abs(e1y) * (0.5 * dx) + abs(e2y) * (0.5 * dy)) * (1 + 1e-12) + 1e-15
+        hz = (abs(e1z) * (0.5 * dx) + abs(e2z) * (0.5 * dy)) * (1 + 1e-12) + 1e-15
+        t = tri[ids[r]]
+        for local in range(q1 * q2):
+            i = local // q2
+            j = local % q2
+            si = (i + 0.5) * dx
+            sj = (j + 0.5) * dy
+            cx = a0 + si * e1x + sj * e2x
+            cy = a1 + si * e1y + sj * e2y
+            cz = a2 + si * e1z + sj * e2z
+            lx, ly, lz = cx - hx, cy - hy, cz - hz
+            ux, uy, uz = cx + hx, cy + hy, cz + hz
+            if not (ux >= box_lo[0] and uy >= box_lo[1] and uz >= box_lo[2]
+                    and lx <= box_hi[0] and ly <= box_hi[1] and lz <= box_hi[2]):
+                continue
+            _closest_on_triangle(cx, cy, cz, t, out)
+            ddx, ddy, ddz = out[0] - cx, out[1] - cy, out[2] - cz
+            if not (_dot3(ddx, ddy, ddz, ddx, ddy, ddz) <= rad * rad):
+                continue
+            parent[m] = ids[r]
+            pc[m, 0], pc[m, 1], pc[m, 2] = cx, cy, cz
+            prad[m] = rad
+            plo[m, 0], plo[m, 1], plo[m, 2] = lx, ly, lz
+            phi[m, 0], phi[m, 1], phi[m, 2] = ux, uy, uz
+            wq[m, 0], wq[m, 1], wq[m, 2] = out[0], out[1], out[2]
+            m += 1
+    return parent[:m], pc[:m], prad[:m], plo[:m], phi[:m], wq[:m]
+
+
+@numba.njit(**_JIT)
+def _cell_of(x, lo, s, n):
+    """Bucket index of coordinate x along one axis, clipped to [0, n - 1]."""
+    return min(max(int(math.floor((x - lo) / s)), 0), n - 1)
+
+
+@numba.njit(**_JIT)
+def _buckets_nb(plo, phi, pc, box_lo, s, dims):
+    """Both bucketings of the numpy construction by counting sorts.
+
+    Returns (start, count, items) of the pieces by box overlap and (start, count,
+    items) of the pieces by centre: CSR over the buckets in C order, pieces in
+    increasing order within a bucket (as the stable argsort orders them).
+    """
+    d0, d1, d2 = dims[0], dims[1], dims[2]
+    nb = d0 * d1 * d2
+    npc = pc.shape[0]
+    lo_b = np.empty((npc, 3), np.int64)
+    hi_b = np.empty((npc, 3), np.int64)
+    count = np.zeros(nb, np.int64)
+    for p in range(npc):
+        for a in range(3):
+            lo_b[p, a] = _cell_of(plo[p, a], box_lo[a], s, dims[a])
+            hi_b[p, a] = _cell_of(phi[p, a], box_lo[a], s, dims[a])
+        for bx in range(lo_b[p, 0], hi_b[p, 0] + 1):
+            for by in range(lo_b[p, 1], hi_b[p, 1] + 1):
+                base = (bx * d1 + by) * d2
+                for bz in range(lo_b[p, 2], hi_b[p, 2] + 1):
+                    count[base + bz] += 1
+    start = np.empty(nb, np.int64)
+    acc = 0
+    for b in range(nb):
+        start[b] = acc
+        acc += count[b]
+    items = np.empty(acc, np.int64)
+    fill = start.copy()
+    for p in range(npc):
+        for bx in range(lo_b[p, 0], hi_b[p, 0] + 1):
+            for by in range(lo_b[p, 1], hi_b[p, 1] + 1):
+                base = (bx * d1 + by) * d2
+                for bz in range(lo_b[p, 2], hi_b[p, 2] + 1):
+                    items[fill[base + bz]] = p
+                    fill[base + bz] += 1
+    cbucket = np.empty(npc, np.int64)
+    ccount = np.zeros(nb, np.int64)
+    for p in range(npc):
+        b = (_cell_of(pc[p, 0], box_lo[0], s, d0) * d1 + _cell_of(pc[p, 1], box_lo[1], s, d1)) * d2 \
+            + _cell_of(pc[p, 2], box_lo[2], s, d2)
+        cbucket[p] = b
+        ccount[b] += 1
+    cstart = np.empty(nb, np.int64)
+    acc = 0
+    for b in range(nb):
+        cstart[b] = acc
+        acc += ccount[b]
+    citems = np.empty(npc, np.int64)
+    fill = cstart.copy()
+    for p in range(npc):
+        citems[fill[cbucket[p]]] = p
+        fill[cbucket[p]] += 1
+    return start, count, items, cstart, ccount, citems
+
+
+def _index_tables_numpy(tri, ids, s, box_lo, box_hi, dims):
+    """Pieces of triangles ``ids``, their witnesses, and both bucketings (numpy reference).
+
+    Returns parent, centre, radius, witness of the kept pieces, then (start, count,
+    items) by box overlap and (start, count, items) by centre, all int64.
+    """
+    parent, pc, pr, plo, phi = _pieces(tri, ids, s)
+    wq, _ = closest_point_on_triangles(pc, tri[parent, 0], tri[parent, 1], tri[parent, 2])
+    inside = np.all((phi >= box_lo) & (plo <= box_hi), axis=1)
+    inside &= np.einsum("ij,ij->i", wq - pc, wq - pc) <= pr * pr
+    parent, pc, pr, plo, phi, wq = (x[inside] for x in (parent, pc, pr, plo, phi, wq))
+    tid = np.arange(parent.size)
+    i0 = np.clip(np.floor((plo - box_lo) / s).astype(np.int64), 0, dims - 1)
+    i1 = np.clip(np.floor((phi - box_lo) / s).astype(np.int64), 0, dims - 1)
+    ext = i1 - i0 + 1
+    cnt = np.prod(ext, axis=1)
+    owner, local = _expand_csr(tid, np.zeros_like(cnt), cnt)
+    owner_row = np.repeat(np.arange(tid.size), cnt)
+    ez = ext[owner_row, 2]
+    ey = ext[owner_row, 1]
+    bx = i0[owner_row, 0] + local // (ey * ez)
+    by = i0[owner_row, 1] + (local // ez) % ey
+    bz = i0[owner_row, 2] + local % ez
+    bucket = (bx * dims[1] + by) * dims[2] + bz
+    order = np.argsort(bucket, kind="stable")
+    bucket = bucket[order]
+    items = owner[order]
+    nb = int(np.prod(dims))
+    start = np.searchsorted(bucket, np.arange(nb, dtype=np.int64), side="left")
+    stop = np.searchsorted(bucket, np.arange(nb, dtype=np.int64), side="right")
+    cb = np.clip(np.floor((pc - box_lo) / s).astype(np.int64), 0, dims - 1)
+    cflat = (cb[:, 0] * dims[1] + cb[:, 1]) * dims[2] + cb[:, 2]
+    corder = np.argsort(cflat, kind="stable")
+    cflat = cflat[corder]
+    cstart = np.searchsorted(cflat, np.arange(nb, dtype=np.int64), side="left")
+    cstop = np.searchsorted(cflat, np.arange(nb, dtype=np.int64), side="right")
+    return (parent, pc, pr, wq, start.astype(np.int64), (stop - start).astype(np.int64), items.astype(np.int64),
+            cstart.astype(np.int64), (cstop - cstart).astype(np.int64), corder.astype(np.int64))
+
+
+def _index_tables_compiled(tri, ids, s, box_lo, box_hi, dims):
+    """:func:`_index_tables_numpy` on the compiled kernels (equal tables)."""
+    box_lo = np.ascontiguousarray(box_lo, dtype=float)
+    box_hi = np.ascontiguousarray(box_hi, dtype=float)
+    parent, pc, pr, plo, phi, wq = _pieces_nb(tri, ids.astype(np.int64), float(s), box_lo, box_hi)
+    tables = _buckets_nb(plo, phi, pc, box_lo, float(s), np.asarray(dims, dtype=np.int64))
+    return (parent, pc, pr, wq, *tables)
+
+
 def _expand_csr(owner, starts, counts):
     """Flatten CSR ranges: (owner of each item, item position) for ranges starts[i]:starts[i]+counts[i]."""
     total = int(counts.sum())
@@ -306,15 +582,16 @@ class TriangleIndex:
                 np.linalg.norm(e1, axis=1) * np.linalg.norm(e2, axis=1), 1e-300
             )
             ang[:, k] = np.arccos(np.clip(cosang, -1.0, 1.0))
-        vn = np.zeros_like(v)
-        np.add.at(vn, f.ravel(), (ang[:, :, None] * fn[:, None, :]).reshape(-1, 3))
+        # Sums per vertex by bincount (the same sequential sums as np.add.at, faster).
+        contrib = (ang[:, :, None] * fn[:, None, :]).reshape(-1, 3)
+        vn = np.stack([np.bincount(f.ravel(), weights=contrib[:, c], minlength=v.shape[0]) for c in range(3)], axis=1)
         vn /= np.maximum(np.linalg.norm(vn, axis=1), 1e-300)[:, None]
         # Edge pseudo-normals: sum of the face normals sharing the edge.
         ends = np.stack([f, np.roll(f, -1, axis=1)], axis=-1).reshape(-1, 2)  # edges ab, bc, ca per face
         key = np.sort(ends, axis=1)
         _, inverse = np.unique(key[:, 0] * (v.shape[0] + 1) + key[:, 1], return_inverse=True)
-        en_sum = np.zeros((int(inverse.max()) + 1, 3))
-        np.add.at(en_sum, inverse, np.repeat(fn, 3, axis=0))
+        fn3 = np.repeat(fn, 3, axis=0)
+        en_sum = np.stack([np.bincount(inverse, weights=fn3[:, c]) for c in range(3)], axis=1)
         en = en_sum[inverse]
         en /= np.maximum(np.linalg.norm(en, axis=1), 1e-300)[:, None]
         en = en.reshape(-1, 3, 3)
@@ -336,44 +613,18 @@ class TriangleIndex:
         keep = np.all((hi >= box_lo) & (lo <= box_hi), axis=1)
         # Triangles longer than a bucket are indexed as pieces (a uniform barycentric
         # split), each with its own box and bounding sphere; exact tests use the parent.
-        parent, pc, pr, plo, phi = _pieces(tri, np.flatnonzero(keep), s)
         # A witness per piece: the parent's point nearest the piece centre. Rectangles of
         # the cover that miss the triangle (witness outside the sphere) are dropped.
-        wq, _ = closest_point_on_triangles(pc, tri[parent, 0], tri[parent, 1], tri[parent, 2])
-        inside = np.all((phi >= box_lo) & (plo <= box_hi), axis=1)
-        inside &= np.einsum("ij,ij->i", wq - pc, wq - pc) <= pr * pr
-        parent, pc, pr, plo, phi, wq = (x[inside] for x in (parent, pc, pr, plo, phi, wq))
-        tid = np.arange(parent.size)
-        i0 = np.clip(np.floor((plo - box_lo) / s).astype(np.int64), 0, dims - 1)
-        i1 = np.clip(np.floor((phi - box_lo) / s).astype(np.int64), 0, dims - 1)
-        ext = i1 - i0 + 1
-        cnt = np.prod(ext, axis=1)
-        owner, local = _expand_csr(tid, np.zeros_like(cnt), cnt)
-        owner_row = np.repeat(np.arange(tid.size), cnt)
-        ez = ext[owner_row, 2]
-        ey = ext[owner_row, 1]
-        bx = i0[owner_row, 0] + local // (ey * ez)
-        by = i0[owner_row, 1] + (local // ez) % ey
-        bz = i0[owner_row, 2] + local % ez
-        bucket = (bx * dims[1] + by) * dims[2] + bz
-        order = np.argsort(bucket, kind="stable")
-        bucket = bucket[order]
-        items = owner[order]
-        nb = int(np.prod(dims))
-        start = np.searchsorted(bucket, np.arange(nb, dtype=np.int64), side="left")
-        stop = np.searchsorted(bucket, np.arange(nb, dtype=np.int64), side="right")
-        # Second bucketing, each piece once by its centre: ball queries then need no
-        # de-duplication (pieces are about a bucket across, so their spheres are small).
-        cb = np.clip(np.floor((pc - box_lo) / s).astype(np.int64), 0, dims - 1)
-        cflat = (cb[:, 0] * dims[1] + cb[:, 1]) * dims[2] + cb[:, 2]
-        corder = np.argsort(cflat, kind="stable")
-        cflat = cflat[corder]
-        cstart = np.searchsorted(cflat, np.arange(nb, dtype=np.int64), side="left")
-        cstop = np.searchsorted(cflat, np.arange(nb, dtype=np.int64), side="right")
+        # Pieces are bucketed by box overlap, and a second time each once by its
+        # centre: ball queries then need no de-duplication (pieces are about a bucket
+        # across, so their spheres are small).
+        build = _index_tables_compiled if _COMPILED_INDEX else _index_tables_numpy
+        (parent, pc, pr, wq, start, count, items, cstart, ccount, corder) = build(
+            tri, np.flatnonzero(keep), s, box_lo, box_hi, dims)
         for name, value in (
-            ("centre_start", cstart.astype(np.int64)),
-            ("centre_count", (cstop - cstart).astype(np.int64)),
-            ("centre_items", corder.astype(np.int64)),
+            ("centre_start", cstart),
+            ("centre_count", ccount),
+            ("centre_items", corder),
             ("vertices", v),
             ("faces", f),
             ("bucket_size", s),
@@ -383,9 +634,9 @@ class TriangleIndex:
             ("vertex_normal", vn),
             ("origin", box_lo),
             ("dims", tuple(int(x) for x in dims)),
-            ("bucket_start", start.astype(np.int64)),
-            ("bucket_count", (stop - start).astype(np.int64)),
-            ("bucket_items", items.astype(np.int64)),
+            ("bucket_start", start),
+            ("bucket_count", count),
+            ("bucket_items", items),
             ("piece_witness", wq),
             ("piece_parent", parent),
             ("piece_centre", pc),

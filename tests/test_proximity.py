@@ -103,6 +103,43 @@ def test_long_triangles_are_indexed_in_pieces_without_changing_answers():
     np.testing.assert_array_equal(hit, ref)
 
 
+_TABLES = ("piece_parent", "piece_centre", "piece_radius", "piece_witness", "bucket_start", "bucket_count",
+           "bucket_items", "centre_start", "centre_count", "centre_items")
+
+
+@pytest.mark.parametrize("case", ["annulus", "plate", "clipped", "sliver"])
+def test_compiled_index_tables_equal_the_numpy_construction(case, monkeypatch):
+    # Reference: the numpy construction (proximity._index_tables_numpy); the compiled
+    # one must give the same pieces, witnesses and buckets bit for bit.
+    from ibprep import proximity
+
+    region = {}
+    if case == "annulus":
+        m = _annulus()
+        v, f, size = m.vertices, m.faces, 0.15
+    elif case == "plate":
+        m = trimesh.creation.box(bounds=[[0.0, -3, -3], [0.2, 3, 3]])
+        v, f, size = m.vertices, m.faces, 0.25
+    elif case == "clipped":  # a region cutting through the surface drops pieces outside it
+        m = _annulus()
+        v, f, size = m.vertices, m.faces, 0.1
+        region = dict(region_lower=(-0.3, -2.0, -0.1), region_upper=(2.0, 0.35, 2.0))
+    else:  # long thin slivers of a twisted strip, pieces along their length
+        rng = np.random.default_rng(3)
+        m = trimesh.creation.icosphere(subdivisions=1)
+        v = m.vertices * [3.0, 0.05, 0.05] + rng.normal(scale=1e-3, size=m.vertices.shape)
+        f, size = m.faces, 0.07
+    built = {}
+    for compiled in (True, False):
+        monkeypatch.setattr(proximity, "_COMPILED_INDEX", compiled)
+        built[compiled] = TriangleIndex(v, f, bucket_size=size, **region)
+    assert built[True].piece_parent.size > len(f)  # some triangles are cut into pieces
+    for name in _TABLES:
+        got, ref = getattr(built[True], name), getattr(built[False], name)
+        assert got.dtype == ref.dtype, name
+        np.testing.assert_array_equal(got, ref, err_msg=name)
+
+
 def test_segment_through_thin_plate_detected():
     plate = trimesh.creation.box(bounds=[[0.49, -5, -5], [0.51, 5, 5]])
     idx = TriangleIndex(plate.vertices, plate.faces, bucket_size=0.5)
