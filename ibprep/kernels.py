@@ -551,6 +551,69 @@ def _extreme_eigvals(G, d, e2, v, p_):  # e2: sub-diagonal work array
     return lmin, lmax
 
 
+@numba.njit(**_JIT)
+def _tridiagonalize_lanes(G4, m, v4, p4, acc, alpha, beta):
+    """:func:`_extreme_eigvals`' Householder reduction on every lane of G4 (m, m, L) at once.
+
+    Each lane goes through the one-matrix operations in the same order (a lane
+    whose column is already reduced, ``nrm == 0``, takes a no-op step: v = 0,
+    beta = 0, its entries rewritten with themselves), so its tridiagonal form is
+    bit for bit that of :func:`_extreme_eigvals` on that lane alone.
+    """
+    L = _LANES
+    for k in range(m - 2):
+        for l in range(L):
+            acc[l] = 0.0
+        for j in range(k + 1, m):
+            for l in range(L):
+                acc[l] += G4[j, k, l] * G4[j, k, l]
+        for l in range(L):
+            nrm = math.sqrt(acc[l])
+            if nrm == 0.0:
+                alpha[l] = G4[k + 1, k, l]
+                beta[l] = 0.0
+            else:
+                alpha[l] = -nrm if G4[k + 1, k, l] >= 0.0 else nrm
+                beta[l] = 1.0
+        for j in range(k + 1, m):
+            for l in range(L):
+                v4[j, l] = G4[j, k, l] if beta[l] != 0.0 else 0.0
+        for l in range(L):
+            if beta[l] != 0.0:
+                v4[k + 1, l] -= alpha[l]
+            acc[l] = 0.0
+        for j in range(k + 1, m):
+            for l in range(L):
+                acc[l] += v4[j, l] * v4[j, l]
+        for l in range(L):
+            beta[l] = 2.0 / acc[l] if beta[l] != 0.0 else 0.0
+        for i in range(k + 1, m):
+            for l in range(L):
+                p4[i, l] = 0.0
+        for j in range(k + 1, m):
+            for i in range(k + 1, m):
+                for l in range(L):
+                    p4[i, l] += G4[j, i, l] * v4[j, l]
+        for l in range(L):
+            acc[l] = 0.0
+        for i in range(k + 1, m):
+            for l in range(L):
+                p4[i, l] = beta[l] * p4[i, l]
+                acc[l] += p4[i, l] * v4[i, l]
+        for l in range(L):
+            acc[l] = 0.5 * beta[l] * acc[l]
+        for i in range(k + 1, m):
+            for l in range(L):
+                p4[i, l] -= acc[l] * v4[i, l]
+        for i in range(k + 1, m):
+            for j in range(k + 1, m):
+                for l in range(L):
+                    G4[i, j, l] -= v4[i, l] * p4[j, l] + p4[i, l] * v4[j, l]
+        for l in range(L):
+            G4[k + 1, k, l] = alpha[l]
+            G4[k, k + 1, l] = alpha[l]
+
+
 # Stencils solved side by side: the QR's loops run over this many stencils at once in the
 # innermost position, which vectorises without changing any stencil's order of operations.
 _LANES = 4
@@ -559,10 +622,10 @@ _LANES = 4
 @numba.njit(**_JIT)
 def _lanes_scratch(r, m):
     """Scratch of _wls_lanes: Bt, V (m, r, L); beta (m, L); G4 (m, m, L); y (r, L); acc, alpha, vv (L,);
-    G (m, m); d, e2, v, p_ (m,); nk, cond (L,)."""
+    G (m, 2L): the lane reduction's vectors; d, e2, v, p_ (m,); nk, cond (L,)."""
     L = _LANES
     return (np.zeros((m, r, L)), np.zeros((m, r, L)), np.zeros((m, L)), np.zeros((m, m, L)), np.zeros((r, L)),
-            np.zeros(L), np.zeros(L), np.zeros(L), np.empty((m, m)), np.empty(m), np.empty(m), np.empty(m),
+            np.zeros(L), np.zeros(L), np.zeros(L), np.empty((m, 2 * L)), np.empty(m), np.empty(m), np.empty(m),
             np.empty(m), np.zeros(L, dtype=np.int64), np.zeros(L))
 
 
@@ -632,14 +695,20 @@ def _wls_lanes(Bt, nk, nl, m, V, beta, G4, y, acc, alpha, vv, G, d, e2, v, p_, c
             for l in range(L):
                 G4[p, q, l] = acc[l]
                 G4[q, p, l] = acc[l]
+    _tridiagonalize_lanes(G4, m, G[:, :L], G[:, L:], acc, alpha, vv)
     for l in range(nl):
         cond[l] = np.inf
         if nk[l] < m:
             continue  # fewer weighted rows than unknowns: rank deficient
-        for p in range(m):
-            for q in range(m):
-                G[p, q] = G4[p, q, l]
-        lmin, lmax = _extreme_eigvals(G, d, e2, v, p_)
+        for i in range(m):
+            d[i] = G4[i, i, l]
+            e2[i] = G4[i + 1, i, l] if i < m - 1 else 0.0
+        _tridiagonal_eigvals(d, e2)
+        lmin = np.inf
+        lmax = -np.inf
+        for i in range(m):
+            lmin = min(lmin, d[i])
+            lmax = max(lmax, d[i])
         dmin = np.inf
         dmax = 0.0
         for k in range(m):
