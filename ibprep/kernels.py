@@ -35,6 +35,8 @@ import math
 
 import numba
 import numpy as np
+from numba import types
+from numba.typed import Dict
 
 from .proximity import ClosestPoints, _closest_on_triangle, _dot3  # noqa: F401 (_dot3 used by kernels below)
 
@@ -917,6 +919,296 @@ def _boundary_point(i, ox, oy, oz, reach, m, l_face, l_cc, l_box, tri, qb, grid_
     return dist[i] < nudge
 
 
+# ------------------------------------------------------- recurring neighbour sets
+# Stencils of one body share few neighbour sets: on a surface of smooth pieces
+# the same half-balls of lattice offsets recur (1 459 sets among the 41 699
+# stencils of the tapered-wing benchmark). For a fit centred on its own cell
+# (the direct method) the weighted neighbour rows A_n depend on the set alone,
+# so their Gram matrix G_n = A_n^T A_n is factorised once per set, as
+# G_n = Q diag(lam) Q^T (cyclic Jacobi), and each stencil adds its boundary row
+# a_b as a rank-one update G = G_n + a_b a_b^T:
+#   * the extreme eigenvalues of G from the secular equation
+#     1 + sum_i z_i^2 / (lam_i - mu) = 0, z = Q^T a_b (Golub 1973, "Some modified
+#     matrix eigenvalue problems", SIAM Rev. 15; Bunch, Nielsen & Sorensen 1978,
+#     Numer. Math. 31), solved by Newton's method kept inside its bracket;
+#   * g = G^-1 e_0 by the Sherman-Morrison formula from G_n^-1 = Q diag(1/lam) Q^T,
+#     and the value weights sw_j (a_j . g), as the QR solve defines them.
+# Its rounding error grows like cond(A)^2 (against cond(A) for the QR solve), so
+# the update is used only where both the set's and the stencil's condition are
+# at most _SET_COND_MAX: there it agrees with the QR solve to about 1e-13 of the
+# largest weight (tests/test_kernels.py). Any other stencil, and the image-point
+# method, take the QR solve.
+_SET_COND_MAX = 50.0
+_JACOBI_SWEEPS = 50
+
+
+@numba.njit(**_JIT)
+def _jacobi_rotate(a, i, j, k, l, s, tau):
+    g = a[i, j]
+    hh = a[k, l]
+    a[i, j] = g - s * (hh + g * tau)
+    a[k, l] = hh + s * (g - hh * tau)
+
+
+@numba.njit(**_JIT)
+def _jacobi_eigh(a, m, vecs, lam, bw, zw):
+    """Eigenvalues (ascending, in lam) and eigenvectors (columns of vecs) of the symmetric
+    (m, m) a (its upper triangle is destroyed) by the cyclic Jacobi method with
+    thresholds (Rutishauser 1971; Press et al., Numerical Recipes, 3rd ed. 2007,
+    §11.1). Returns False if it did not converge."""
+    for i in range(m):
+        for j in range(m):
+            vecs[i, j] = 1.0 if i == j else 0.0
+        bw[i] = a[i, i]
+        lam[i] = a[i, i]
+        zw[i] = 0.0
+    done = False
+    for sweep in range(_JACOBI_SWEEPS):
+        sm = 0.0
+        for p in range(m - 1):
+            for q in range(p + 1, m):
+                sm += abs(a[p, q])
+        if sm == 0.0:
+            done = True
+            break
+        tresh = 0.2 * sm / (m * m) if sweep < 3 else 0.0
+        for p in range(m - 1):
+            for q in range(p + 1, m):
+                g = 100.0 * abs(a[p, q])
+                if sweep > 3 and abs(lam[p]) + g == abs(lam[p]) and abs(lam[q]) + g == abs(lam[q]):
+                    a[p, q] = 0.0
+                elif abs(a[p, q]) > tresh:
+                    hh = lam[q] - lam[p]
+                    if abs(hh) + g == abs(hh):
+                        t = a[p, q] / hh
+                    else:
+                        theta = 0.5 * hh / a[p, q]
+                        t = 1.0 / (abs(theta) + math.sqrt(1.0 + theta * theta))
+                        if theta < 0.0:
+                            t = -t
+                    c = 1.0 / math.sqrt(1.0 + t * t)
+                    sn = t * c
+                    tau = sn / (1.0 + c)
+                    hv = t * a[p, q]
+                    zw[p] -= hv
+                    zw[q] += hv
+                    lam[p] -= hv
+                    lam[q] += hv
+                    a[p, q] = 0.0
+                    for j in range(p):
+                        _jacobi_rotate(a, j, p, j, q, sn, tau)
+                    for j in range(p + 1, q):
+                        _jacobi_rotate(a, p, j, j, q, sn, tau)
+                    for j in range(q + 1, m):
+                        _jacobi_rotate(a, p, j, q, j, sn, tau)
+                    for j in range(m):
+                        _jacobi_rotate(vecs, j, p, j, q, sn, tau)
+        for p in range(m):
+            bw[p] += zw[p]
+            lam[p] = bw[p]
+            zw[p] = 0.0
+    if not done:
+        return False
+    for i in range(1, m):  # ascending, vectors alongside
+        j = i
+        while j > 0 and lam[j - 1] > lam[j]:
+            lam[j - 1], lam[j] = lam[j], lam[j - 1]
+            for r in range(m):
+                vecs[r, j - 1], vecs[r, j] = vecs[r, j], vecs[r, j - 1]
+            j -= 1
+    return True
+
+
+@numba.njit(**_JIT)
+def _secular_root(dl, z, m, use, hi):
+    """The root in (0, hi] of f(t) = 1 + sum_{use} z_i^2 / (dl_i - t), f increasing there
+    (dl: the eigenvalues shifted so that the bracket's left pole is at 0).
+
+    Newton's method, falling back to bisection when a step leaves the bracket.
+    Returns (t, converged).
+    """
+    lo = 0.0
+    # First guess from the pole at 0 alone, the other terms taken at t = 0.
+    rest = 1.0
+    z0 = 0.0
+    for i in range(m):
+        if use[i]:
+            if dl[i] == 0.0:
+                z0 += z[i] * z[i]
+            else:
+                rest += z[i] * z[i] / dl[i]
+    t = z0 / rest if rest > 0.0 else 0.5 * hi
+    if not (lo < t < hi):
+        t = 0.5 * (lo + hi)
+    for _ in range(100):
+        f = 1.0
+        fp = 0.0
+        for i in range(m):
+            if use[i]:
+                r = 1.0 / (dl[i] - t)
+                q = z[i] * z[i] * r
+                f += q
+                fp += q * r
+        if f == 0.0:
+            return t, True
+        if f > 0.0:
+            hi = t
+        else:
+            lo = t
+        tn = t - f / fp
+        if not (lo < tn < hi):
+            tn = 0.5 * (lo + hi)
+        if abs(tn - t) <= 4.0 * 2.220446049250313e-16 * abs(tn) or not (lo < tn < hi):
+            return tn, True
+        t = tn
+    return t, False
+
+
+@numba.njit(**_JIT)
+def _rank_one_extremes(lam, z, m, dl, use):
+    """Smallest and largest eigenvalues of diag(lam) + z z^T (lam ascending), and whether found.
+
+    Components with |z_i| below 8 eps max(|lam|, |z|) leave lam_i an eigenvalue
+    (deflation, as LAPACK's dlaed2); the rest give the secular equation's
+    outermost roots.
+    """
+    zz = 0.0
+    zmax = 0.0
+    for i in range(m):
+        zz += z[i] * z[i]
+        zmax = max(zmax, abs(z[i]))
+    tol = 8.0 * 2.220446049250313e-16 * max(abs(lam[m - 1]), zmax)
+    first = -1
+    last = -1
+    for i in range(m):
+        use[i] = abs(z[i]) > tol
+        if use[i]:
+            if first < 0:
+                first = i
+            last = i
+    if first < 0:
+        return lam[0], lam[m - 1], True
+    # Smallest: lam[0] if z_0 was deflated, else the root right of lam[0] (or a deflated lam[1] below it).
+    if first > 0:
+        lmin = lam[0]
+    else:
+        nxt = -1
+        for i in range(1, m):
+            if use[i]:
+                nxt = i
+                break
+        for i in range(m):
+            dl[i] = lam[i] - lam[0]
+        hi = dl[nxt] if nxt > 0 else zz
+        t, ok = _secular_root(dl, z, m, use, hi)
+        if not ok:
+            return 0.0, 0.0, False
+        lmin = lam[0] + t
+        if m > 1 and not use[1]:
+            lmin = min(lmin, lam[1])
+    # Largest: the root right of the last pole, at most |z|^2 beyond it.
+    for i in range(m):
+        dl[i] = lam[i] - lam[last]
+    t, ok = _secular_root(dl, z, m, use, zz)
+    if not ok:
+        return 0.0, 0.0, False
+    lmax = max(lam[last] + t, lam[m - 1])
+    return lmin, lmax, True
+
+
+@numba.njit(**_JIT)
+def _set_hash(rd, order, kept):
+    """64-bit FNV-1a hash of a neighbour set: its round and offset indices in row order."""
+    hsh = np.uint64(14695981039346656037)
+    prime = np.uint64(1099511628211)
+    hsh = (hsh ^ np.uint64(rd + 1)) * prime
+    for q in range(kept):
+        hsh = (hsh ^ np.uint64(order[q] + 2)) * prime
+    return np.int64(hsh & np.uint64(0x7FFFFFFFFFFFFFFF))
+
+
+@numba.njit(**_JIT)
+def _set_factor(slot, rd, order, kept, offs, planar, m, support, weight_kind, s_rows, s_vecs, s_lam, s_gn, s_ok,
+                s_rd, s_len, s_offs, gram, brow, bw, zw):
+    """Factorise the neighbour set of slot: rows sw_j^2 b_j, eigen-pairs of G_n and G_n^-1 e_0."""
+    s_rd[slot] = rd
+    s_len[slot] = kept
+    for q in range(kept):
+        s_offs[slot, q] = order[q]
+    for a in range(m):
+        for b in range(m):
+            gram[a, b] = 0.0
+    for q in range(kept):
+        c = order[q]
+        xs = float(offs[c, 0])
+        ys = float(offs[c, 1])
+        zs = 0.0 if planar else float(offs[c, 2])
+        w = _weight_of(math.sqrt(xs * xs + ys * ys + zs * zs), support, weight_kind)
+        _basis_row(xs, ys, zs, planar, brow)
+        for a in range(m):
+            s_rows[slot, q, a] = w * brow[a]
+            for b in range(a, m):
+                gram[a, b] += w * brow[a] * brow[b]
+    for a in range(m):
+        for b in range(a):
+            gram[a, b] = gram[b, a]
+    lam = s_lam[slot]
+    ok = _jacobi_eigh(gram, m, s_vecs[slot], lam, bw, zw)
+    ok = ok and lam[0] > 0.0 and lam[m - 1] <= _SET_COND_MAX * _SET_COND_MAX * lam[0]
+    s_ok[slot] = ok
+    if ok:
+        vecs = s_vecs[slot]
+        for a in range(m):
+            acc = 0.0
+            for k in range(m):
+                acc += vecs[a, k] * (vecs[0, k] / lam[k])
+            s_gn[slot, a] = acc
+
+
+@numba.njit(**_JIT)
+def _set_solve(slot, kept, ab, m, s_rows, s_vecs, s_lam, s_gn, z, y, g, dl, use, wts_row, out):
+    """Weights of a stencil whose neighbour set is factorised in slot; its boundary row is ab.
+
+    Writes the neighbour weights to wts_row and returns (cond, boundary weight
+    before the row scale, ok); ok is False where the update is not to be used.
+    """
+    vecs = s_vecs[slot]
+    lam = s_lam[slot]
+    for k in range(m):
+        acc = 0.0
+        for a in range(m):
+            acc += vecs[a, k] * ab[a]
+        z[k] = acc
+    lmin, lmax, found = _rank_one_extremes(lam, z, m, dl, use)
+    if not found or not (lmin > _GRAM_RTOL * lmax) or lmax > _SET_COND_MAX * _SET_COND_MAX * lmin:
+        return np.inf, 0.0, False
+    gn = s_gn[slot]
+    s1 = 0.0
+    s2 = 1.0
+    for a in range(m):
+        acc = 0.0
+        for k in range(m):
+            acc += vecs[a, k] * (z[k] / lam[k])
+        y[a] = acc
+        s1 += ab[a] * gn[a]
+    for a in range(m):
+        s2 += ab[a] * y[a]
+    ratio = s1 / s2
+    for a in range(m):
+        g[a] = gn[a] - y[a] * ratio
+    rows = s_rows[slot]
+    for q in range(kept):
+        acc = 0.0
+        for a in range(m):
+            acc += rows[q, a] * g[a]
+        wts_row[q] = acc
+    acc = 0.0
+    for a in range(m):
+        acc += ab[a] * g[a]
+    out[0] = acc
+    return math.sqrt(lmax / lmin), acc, True
+
+
 @numba.njit(**_JIT)
 def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt, nrm, dist, allowed, offs,
                      round_n, round_r, min_visible, kmax, image, neumann, planar, weight_kind, find_boundary, two_d,
@@ -931,6 +1223,7 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
     wts = np.zeros((n, kmax))
     wbnd = np.zeros(n)
     cond = np.full(n, np.inf)
+    by_set = np.zeros(n, dtype=np.bool_)
     cflat = np.empty(no, dtype=np.int64)
     cvis = np.zeros(no, dtype=np.bool_)
     cidx = np.empty(no, dtype=np.int64)
@@ -948,6 +1241,31 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
     who = np.empty(_LANES, dtype=np.int64)
     lane = 0
     brow = np.empty(m)
+    brow2 = np.empty(m)
+    ab = np.empty(m)
+    # Factorised neighbour sets (see _SET_COND_MAX): hash -> slot.
+    table = Dict.empty(key_type=types.int64, value_type=types.int64)
+    set_cap = min(n, 8192)
+    n_sets = 0
+    s_rows = np.empty((set_cap, kmax, m))
+    s_vecs = np.empty((set_cap, m, m))
+    s_lam = np.empty((set_cap, m))
+    s_gn = np.empty((set_cap, m))
+    s_ok = np.zeros(set_cap, dtype=np.bool_)
+    s_rd = np.empty(set_cap, dtype=np.int64)
+    s_len = np.empty(set_cap, dtype=np.int64)
+    s_offs = np.empty((set_cap, kmax), dtype=np.int64)
+    gram = np.empty((m, m))
+    bw = np.empty(m)
+    zw = np.empty(m)
+    zv = np.empty(m)
+    yv = np.empty(m)
+    gv = np.empty(m)
+    dl = np.empty(m)
+    use = np.empty(m, dtype=np.bool_)
+    wrow = np.empty(kmax)
+    bout = np.empty(1)
+    rd_used = 0
     nrounds = round_n.shape[0]
     s1, s2 = shape3[1], shape3[2]
     qb = np.empty(3, dtype=np.int64)
@@ -1022,6 +1340,7 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
             n_old = n_off
             if count >= min_visible or rd == nrounds - 1:
                 used_r[i] = round_r[rd]
+                rd_used = rd
                 break
         # Keep the nearest kmax visible ones.
         kept = min(count, kmax)
@@ -1054,13 +1373,53 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
                     nv += 1
         # Rows of the fit: the kept neighbours, then the boundary datum; zero weights dropped.
         support = used_r[i] + 1.0
+        for q in range(kept):
+            nb[i, q] = cflat[order[q]]
+        xs = (bpt[i, 0] - cx) / h
+        ys = (bpt[i, 1] - cy) / h
+        zs = 0.0 if planar else (bpt[i, 2] - cz) / h
+        wb = math.sqrt(_weight_of(math.sqrt(xs * xs + ys * ys + zs * zs), support, weight_kind))
+        if neumann:
+            _normal_derivative_row(xs, ys, zs, nrm[i, 0], nrm[i, 1], 0.0 if planar else nrm[i, 2], planar, brow)
+        else:
+            _basis_row(xs, ys, zs, planar, brow)
+        for k in range(m):
+            ab[k] = wb * brow[k]
+        if not image and wb != 0.0 and kept > 0:
+            # A recurring neighbour set: reuse its factorisation (see _SET_COND_MAX).
+            hkey = _set_hash(rd_used, order, kept)
+            slot = table[hkey] if hkey in table else -1
+            if slot >= 0:
+                same = s_rd[slot] == rd_used and s_len[slot] == kept
+                for q in range(kept):
+                    same = same and s_offs[slot, q] == order[q]
+                if not same:
+                    slot = -2  # a hash collision: solve this one by QR
+            elif n_sets < set_cap:
+                slot = n_sets
+                n_sets += 1
+                table[hkey] = slot
+                _set_factor(slot, rd_used, order, kept, offs, planar, m, support, weight_kind, s_rows, s_vecs,
+                            s_lam, s_gn, s_ok, s_rd, s_len, s_offs, gram, brow2, bw, zw)
+            if slot >= 0 and s_ok[slot]:
+                cnd, bval, done = _set_solve(slot, kept, ab, m, s_rows, s_vecs, s_lam, s_gn, zv, yv, gv, dl, use,
+                                             wrow, bout)
+                if done:
+                    for q in range(kept):
+                        wts[i, q] = wrow[q]
+                    wbnd[i] = bval * wb
+                    cond[i] = cnd
+                    by_set[i] = True
+                    continue
         nk = 0
         for q in range(kept):
             c = order[q]
-            nb[i, q] = cflat[c]
-            xs = ((lower3[0] + (ai + offs[c, 0] + 0.5) * h) - cx) / h
-            ys = ((lower3[1] + (aj + offs[c, 1] + 0.5) * h) - cy) / h
-            zs = ((lower3[2] + (ak + offs[c, 2] + 0.5) * h) - cz) / h
+            if image:
+                xs = ((lower3[0] + (ai + offs[c, 0] + 0.5) * h) - cx) / h
+                ys = ((lower3[1] + (aj + offs[c, 1] + 0.5) * h) - cy) / h
+                zs = ((lower3[2] + (ak + offs[c, 2] + 0.5) * h) - cz) / h
+            else:  # the fit is centred on the cell: scaled coordinates are the offsets, exactly
+                xs, ys, zs = float(offs[c, 0]), float(offs[c, 1]), float(offs[c, 2])
             if planar:
                 zs = 0.0
             rho = math.sqrt(xs * xs + ys * ys + zs * zs)
@@ -1073,19 +1432,10 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
             sw[nk, lane] = wq
             row_of[nk, lane] = q
             nk += 1
-        xs = (bpt[i, 0] - cx) / h
-        ys = (bpt[i, 1] - cy) / h
-        zs = 0.0 if planar else (bpt[i, 2] - cz) / h
-        wq = math.sqrt(_weight_of(math.sqrt(xs * xs + ys * ys + zs * zs), support, weight_kind))
-        if wq != 0.0:
-            if neumann:
-                _normal_derivative_row(xs, ys, zs, nrm[i, 0], nrm[i, 1], 0.0 if planar else nrm[i, 2], planar,
-                                       brow)
-            else:
-                _basis_row(xs, ys, zs, planar, brow)
+        if wb != 0.0:
             for k in range(m):
-                Bt[k, nk, lane] = wq * brow[k]
-            sw[nk, lane] = wq
+                Bt[k, nk, lane] = ab[k]
+            sw[nk, lane] = wb
             row_of[nk, lane] = -1
             nk += 1
         if nk < m:
@@ -1101,7 +1451,7 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
     if lane > 0:
         _solve_lanes(lane, m, Bt, V, beta, G4, y, acc, alpha, vv, G, d, e2, v, p_, nk4, cl, sw, row_of, who, wts,
                      wbnd, cond)
-    return nb, nvis, used_r, wts, wbnd, cond
+    return nb, nvis, used_r, wts, wbnd, cond, by_set
 
 
 @numba.njit(**_JIT)
@@ -1131,9 +1481,11 @@ def stencil_fits(tags, shape3, lower3, h, cells, anchor, origin, centre, allowed
     offsets, round by round up to the radii; the segment test of
     :func:`segments_cross_fan` against the surface pieces near the origin; the
     nearest ``kmax`` visible kept; the weighted design matrix in scaled
-    coordinates; and the QR solve of :func:`wls_value_weights`. Agrees with the
-    array pipeline it stands in for (tests/test_kernels.py): same neighbours and
-    counts, weights to round-off.
+    coordinates; and the QR solve of :func:`wls_value_weights`, or, for a
+    well-conditioned fit centred on its cell whose neighbour set recurs, the
+    rank-one update of that set's factorisation (see ``_SET_COND_MAX``). Agrees
+    with the array pipeline it stands in for (tests/test_kernels.py): same
+    neighbours and counts, weights to round-off.
 
     Parameters
     ----------
@@ -1165,6 +1517,7 @@ def stencil_fits(tags, shape3, lower3, h, cells, anchor, origin, centre, allowed
     nb : (n, kmax) int — neighbours, -1 padded; nvis : (n,) int; used_radius : (n,)
     float; weights : (n, kmax) float; boundary : (n,) float — raw weight of the
     boundary row; cond : (n,) float — inf where the fit is rank deficient;
+    by_set : (n,) bool — solved by updating a recurring neighbour set's factorisation;
     bpt, nrm : (n, 3) float — the boundary points and normals; dist : (n,) float —
     the origin's distance to the surface (zeros when ``boundary`` was given);
     origin : (n, 3) float — the origins used.

@@ -823,7 +823,7 @@ def _fit_compiled(flat_tags, shape3, lower3, h, cells, anchor, origin, centre, b
     With bpt and nrm None the pass finds the boundary points too (fluid-side cells,
     whose origin is the centre unless it lies on the surface).
     """
-    nb, nvis, used_radius, wn, ab, cond, bpt, nrm, _, _ = _stencil_fits(
+    nb, nvis, used_radius, wn, ab, cond, _, bpt, nrm, _, _ = _stencil_fits(
         flat_tags, shape3, lower3, h, cells, anchor, origin, centre, allowed,
         _offsets(opts.max_radius, planar), radii, opts.min_visible, opts.max_neighbours,
         image=opts.method == "image-point", neumann=opts.bc == "neumann", planar=planar, weight=opts.weight,
@@ -899,8 +899,11 @@ def _fit_arrays(flat_tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
     k = int(max(1, nvis.max()))
     nb = nb[:, :k]
     pad = nb < 0
-    xn, _ = centres_of(np.where(pad, 0, nb).reshape(-1))
-    xi = (xn.reshape(n, k, 3) - centre[:, None, :]) / h
+    xn, ijk_n = centres_of(np.where(pad, 0, nb).reshape(-1))
+    if opts.method == "image-point":
+        xi = (xn.reshape(n, k, 3) - centre[:, None, :]) / h
+    else:  # the fit is centred on the cell: scaled coordinates are the index offsets, exactly
+        xi = (ijk_n.reshape(n, k, 3) - anchor[:, None, :]).astype(float)
     xb = (bpt - centre) / h
     if planar:
         xi = xi[..., :2]
