@@ -1020,42 +1020,66 @@ def _jacobi_eigh(a, m, vecs, lam, bw, zw):
 
 
 @numba.njit(**_JIT)
-def _secular_root(dl, z, m, use, hi):
-    """The root in (0, hi] of f(t) = 1 + sum_{use} z_i^2 / (dl_i - t), f increasing there
-    (dl: the eigenvalues shifted so that the bracket's left pole is at 0).
+def _secular_root(dl, z, m, use, pole, delta, hi):
+    """The root in (0, hi] of f(t) = 1 + sum_{use} z_i^2 / (dl_i - t), increasing there.
 
-    Newton's method, falling back to bisection when a step leaves the bracket.
+    dl: the eigenvalues shifted so that the bracket's pole, index ``pole``, is at
+    0; ``delta``: the nearest other pole (dl of a used index; NaN if none). Each
+    step solves the model 1 + (rest at t_k) - z_p^2/t + s/(delta - t) matched in
+    value and slope at t_k (Bunch, Nielsen & Sorensen 1978), falling back to
+    Newton's step and to bisection whenever a step leaves the bracket.
     Returns (t, converged).
     """
     lo = 0.0
-    # First guess from the pole at 0 alone, the other terms taken at t = 0.
+    zp = z[pole] * z[pole]
     rest = 1.0
-    z0 = 0.0
     for i in range(m):
-        if use[i]:
-            if dl[i] == 0.0:
-                z0 += z[i] * z[i]
-            else:
-                rest += z[i] * z[i] / dl[i]
-    t = z0 / rest if rest > 0.0 else 0.5 * hi
+        if use[i] and i != pole:
+            rest += z[i] * z[i] / dl[i]
+    t = zp / rest if rest > 0.0 else 0.5 * hi
     if not (lo < t < hi):
         t = 0.5 * (lo + hi)
     for _ in range(100):
-        f = 1.0
-        fp = 0.0
+        psi = 0.0
+        dpsi = 0.0
+        size = 1.0
         for i in range(m):
-            if use[i]:
+            if use[i] and i != pole:
                 r = 1.0 / (dl[i] - t)
                 q = z[i] * z[i] * r
-                f += q
-                fp += q * r
-        if f == 0.0:
+                psi += q
+                dpsi += q * r
+                size += abs(q)
+        f = 1.0 - zp / t + psi
+        # Stop once f is within its own rounding error (a bound of the kind LAPACK's dlaed4 uses).
+        if abs(f) <= 16.0 * 2.220446049250313e-16 * (size + zp / t):
             return t, True
         if f > 0.0:
             hi = t
         else:
             lo = t
-        tn = t - f / fp
+        tn = np.nan
+        if delta == delta:  # two-pole model
+            gap = delta - t
+            sl = dpsi * gap * gap
+            a = 1.0 + psi - sl / gap
+            bq = a * delta + zp + sl
+            cq = zp * delta
+            disc = bq * bq - 4.0 * a * cq
+            if disc >= 0.0:
+                sq = math.sqrt(disc)
+                r1 = 2.0 * cq / (bq + sq) if bq + sq != 0.0 else np.nan
+                r2 = (bq + sq) / (2.0 * a) if a != 0.0 else np.nan
+                if lo < r1 < hi:
+                    tn = r1
+                elif lo < r2 < hi:
+                    tn = r2
+        else:  # one pole: 1 + psi - zp / t = 0 with psi frozen
+            a = 1.0 + psi
+            if a > 0.0:
+                tn = zp / a
+        if not (lo < tn < hi):
+            tn = t - f / (zp / (t * t) + dpsi)  # Newton
         if not (lo < tn < hi):
             tn = 0.5 * (lo + hi)
         if abs(tn - t) <= 4.0 * 2.220446049250313e-16 * abs(tn) or not (lo < tn < hi):
@@ -1100,16 +1124,20 @@ def _rank_one_extremes(lam, z, m, dl, use):
         for i in range(m):
             dl[i] = lam[i] - lam[0]
         hi = dl[nxt] if nxt > 0 else zz
-        t, ok = _secular_root(dl, z, m, use, hi)
+        t, ok = _secular_root(dl, z, m, use, 0, dl[nxt] if nxt > 0 else np.nan, hi)
         if not ok:
             return 0.0, 0.0, False
         lmin = lam[0] + t
         if m > 1 and not use[1]:
             lmin = min(lmin, lam[1])
     # Largest: the root right of the last pole, at most |z|^2 beyond it.
+    prev = -1
+    for i in range(last):
+        if use[i]:
+            prev = i
     for i in range(m):
         dl[i] = lam[i] - lam[last]
-    t, ok = _secular_root(dl, z, m, use, zz)
+    t, ok = _secular_root(dl, z, m, use, last, dl[prev] if prev >= 0 else np.nan, zz)
     if not ok:
         return 0.0, 0.0, False
     lmax = max(lam[last] + t, lam[m - 1])
