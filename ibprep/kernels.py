@@ -18,7 +18,10 @@ conservative box screen in front), and run the same exact tests (Möller &
 Trumbore 1997 for crossings; Ericson 2005, §5.1.5 for closest points): their
 results equal the numpy path's bit for bit, ties included. The WLS kernel
 factorises each stencil with its own Householder QR, so it agrees with the
-LAPACK path to round-off (tests/test_kernels.py gives the tolerances).
+LAPACK path to round-off (tests/test_kernels.py gives the tolerances). The
+stencil pass solves a well-conditioned fit whose neighbour set it has met before
+by a rank-one update of that set's factorisation instead (see ``_SET_COND_MAX``),
+which agrees with the QR solve to round-off too.
 
 All are compiled with ``fastmath`` off (no re-association, no fused
 multiply-add), numpy's floating-point error model (a division by zero gives
