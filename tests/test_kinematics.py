@@ -11,7 +11,6 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from scipy.interpolate import CubicSpline
 from scipy.spatial.transform import Rotation
 
 from ibprep.errors import InputError

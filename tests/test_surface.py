@@ -1,7 +1,6 @@
 """Surfaces: checks, loading bad files, atomic saving, markers, local thickness."""
 
 import math
-import os
 import warnings
 
 import numpy as np

@@ -105,7 +105,7 @@ def test_a_killed_process_worker_is_an_error_not_a_pass():
 @pytest.mark.slow
 def test_a_failing_task_on_dask_is_an_error_not_a_pass():
     pytest.importorskip("distributed")
-    from distributed import Client, LocalCluster
+    from distributed import LocalCluster
 
     with LocalCluster(n_workers=1, processes=False, dashboard_address=None) as cluster:
         with pytest.raises(IbprepError, match=r"sweep worker failed on the chunk starting at t = .* s"):
