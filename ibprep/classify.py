@@ -551,6 +551,273 @@ def _crossings(vertices: np.ndarray, faces: np.ndarray, xs, ys, zs) -> _Crossing
     return _Crossings(i, j, k, w)
 
 
+# --------------------------------------------------------------------------- crossings grouped by row (stepping)
+@dataclass(frozen=True)
+class _Rows:
+    """Crossings grouped by row of centres: the compact form a step keeps and compares.
+
+    The rows ``(j, k)`` of the index box ``j0 <= j < j0 + nj``, ``k0 <= k < k0 + nk``
+    are numbered ``r = (j - j0) * nk + (k - k0)`` (the order of ``j * nz + k``); the
+    crossings of row ``r`` are ``i[start[r]:start[r + 1]]``, ascending, with their
+    signs ``w[start[r]:start[r + 1]]``.
+
+    start : (nj * nk + 1,) int64. i : (c,) int32 (int64 on a grid of 2**31 - 1 or
+    more centres along x). w : (c,) int8, +1 entering, -1 leaving.
+    """
+
+    j0: int
+    k0: int
+    nj: int
+    nk: int
+    start: np.ndarray
+    i: np.ndarray
+    w: np.ndarray
+
+    def expanded(self) -> _Crossings:
+        """The same crossings as a row-sorted :class:`_Crossings` (int64 indices)."""
+        r = np.repeat(np.arange(self.nj * self.nk, dtype=np.int64), np.diff(self.start))
+        j, k = np.divmod(r, max(self.nk, 1))
+        return _Crossings(self.i.astype(np.int64), j + self.j0, k + self.k0, self.w.copy(), row_sorted=True)
+
+
+def _i_proto(nx: int) -> np.ndarray:
+    """Empty array of the dtype that holds a centre index 0..nx along x (int32 unless the grid is huge)."""
+    return np.empty(0, np.int32 if nx < 2**31 - 1 else np.int64)
+
+
+@numba.njit(**_JIT)
+def _group_rows_nb(r, i, w, nrows, i_proto):
+    """Counting sort of crossings by row number ``r`` (0..nrows-1), ascending ``i`` within a row.
+
+    Returns ``(start, si, sw)`` as :class:`_Rows` holds them. Each crossing is
+    inserted in order into its row's bucket (rows hold a handful of crossings).
+    """
+    n = r.size
+    start = np.zeros(nrows + 1, np.int64)
+    for c in range(n):
+        start[r[c] + 1] += 1
+    for q in range(nrows):
+        start[q + 1] += start[q]
+    fill = start[:-1].copy()
+    si = np.empty(n, i_proto.dtype)
+    sw = np.empty(n, np.int8)
+    for c in range(n):
+        q = r[c]
+        lo = start[q]
+        p = fill[q]
+        fill[q] = p + 1
+        v = i[c]
+        while p > lo and si[p - 1] > v:
+            si[p] = si[p - 1]
+            sw[p] = sw[p - 1]
+            p -= 1
+        si[p] = v
+        sw[p] = w[c]
+    return start, si, sw
+
+
+def _row_sorted(cr, shape3) -> _Rows:
+    """Crossings grouped by row (compiled; :func:`_row_sorted_numpy` is the reference order).
+
+    A :class:`_Rows` is returned as is; a :class:`_Crossings` is grouped over the
+    index box of its own rows.
+    """
+    if isinstance(cr, _Rows):
+        return cr
+    nx = shape3[0]
+    if cr.i.size == 0:
+        return _Rows(0, 0, 0, 0, np.zeros(1, np.int64), _i_proto(nx), np.empty(0, np.int8))
+    j0, k0 = int(cr.j.min()), int(cr.k.min())
+    nj, nk = int(cr.j.max()) - j0 + 1, int(cr.k.max()) - k0 + 1
+    r = (cr.j - j0) * nk + (cr.k - k0)
+    start, si, sw = _group_rows_nb(r, cr.i, cr.w, nj * nk, _i_proto(nx))
+    return _Rows(j0, k0, nj, nk, start, si, sw)
+
+
+@numba.njit(**_JIT)
+def _crossing_rows_nb(vx, vy, vz, f0, f1, f2, xs, ys, zs, cap, i_proto):
+    """:func:`_crossings_nb`'s crossings grouped by row, in one pass over the triangles.
+
+    Same predicates and abscissae, same expressions (bit for bit). The rows are
+    numbered over the index box of all vertices' (y, z) extents, which holds every
+    triangle's lattice range; each triangle is enumerated as soon as it is set up,
+    into buffers of ``cap`` crossings that grow by doubling, and each row's count
+    is kept on the way for the counting sort at the end.
+
+    Returns ``(j0, k0, nj, nk, start, i, w, exact)``: the :class:`_Rows` fields, and
+    the triangles left to the numpy path (exact arithmetic needed), whose
+    crossings are not included.
+    """
+    m = f0.size
+    inv_hx = 1.0 / (xs[1] - xs[0]) if xs.size > 1 else 1.0
+    inv_hy = 1.0 / (ys[1] - ys[0]) if ys.size > 1 else 1.0
+    inv_hz = 1.0 / (zs[1] - zs[0]) if zs.size > 1 else 1.0
+    # Lattice range of each vertex: a triangle's range [first of its lowest
+    # coordinate, stop of its highest) is the min of its vertices' firsts and the
+    # max of their stops (both are monotone in the coordinate).
+    nv = vy.size
+    vj = np.empty((nv, 2), np.int64)
+    vk = np.empty((nv, 2), np.int64)
+    jb, je, kb, ke = ys.size, 0, zs.size, 0
+    for v in range(nv):
+        j0, j1 = _range_nb(ys, inv_hy, vy[v], vy[v])
+        k0, k1 = _range_nb(zs, inv_hz, vz[v], vz[v])
+        vj[v, 0], vj[v, 1], vk[v, 0], vk[v, 1] = j0, j1, k0, k1
+        jb, je, kb, ke = min(jb, j0), max(je, j1), min(kb, k0), max(ke, k1)
+    nj = max(je - jb, 0)
+    nk = max(ke - kb, 0)
+    count = np.zeros(nj * nk + 1, np.int64)
+    cap = max(cap, 16)
+    out_r = np.empty(cap, np.int64)
+    out_i = np.empty(cap, i_proto.dtype)
+    out_w = np.empty(cap, np.int8)
+    exact = np.empty(m, np.int64)
+    ne = 0
+    n = 0
+    for t in range(m):
+        a, b, c = f0[t], f1[t], f2[t]
+        j0 = min(min(vj[a, 0], vj[b, 0]), vj[c, 0])
+        j1 = max(max(vj[a, 1], vj[b, 1]), vj[c, 1])
+        if j1 <= j0:
+            continue
+        k0 = min(min(vk[a, 0], vk[b, 0]), vk[c, 0])
+        k1 = max(max(vk[a, 1], vk[b, 1]), vk[c, 1])
+        if k1 <= k0:
+            continue
+        y0, y1, y2 = vy[a], vy[b], vy[c]
+        z0, z1, z2 = vz[a], vz[b], vz[c]
+        # Zero projected area (exactly) -> never crossed; _orient_sign's cases.
+        dyab = y1 - y0
+        dzab = z1 - z0
+        e2y = y2 - y0
+        e2z = z2 - z0
+        left = dyab * e2z
+        right = dzab * e2y
+        det = left - right
+        if not (abs(det) > _CCW_ERRBOUND * (abs(left) + abs(right))):
+            if (y0 == y1 and z0 == z1) or (y1 == y2 and z1 == z2) or (y2 == y0 and z2 == z0):
+                continue  # two vertices coincide in projection (an edge along x): exactly zero area
+            left0 = dyab == 0.0 or e2z == 0.0
+            right0 = dzab == 0.0 or e2y == 0.0
+            if left0 and right0:
+                continue  # exactly zero area
+            if not (left0 or right0):
+                exact[ne] = t
+                ne += 1
+                continue
+        need = n + (j1 - j0) * (k1 - k0)
+        if need > out_r.size:
+            grown = max(2 * out_r.size, need)
+            r2 = np.empty(grown, np.int64)
+            i2 = np.empty(grown, i_proto.dtype)
+            w2 = np.empty(grown, np.int8)
+            r2[:n] = out_r[:n]
+            i2[:n] = out_i[:n]
+            w2[:n] = out_w[:n]
+            out_r, out_i, out_w = r2, i2, w2
+        x0, x1, x2 = vx[a], vx[b], vx[c]
+        dybc, dzbc = y2 - y1, z2 - z1
+        dyca, dzca = y0 - y2, z0 - z2
+        e1x = x1 - x0
+        e2x = x2 - x0
+        n_x = dyab * e2z - dzab * e2y
+        n_y = dzab * e2x - e1x * e2z
+        n_z = e1x * e2y - dyab * e2x
+        ky = n_y / n_x
+        kz = n_z / n_x
+        xlo = min(min(x0, x1), x2)
+        xhi = max(max(x0, x1), x2)
+        ax = x0
+        if not (np.isfinite(ky) and np.isfinite(kz)):  # n_x underflowed: the mid abscissa
+            ky = 0.0
+            kz = 0.0
+            ax = 0.5 * (xlo + xhi)
+        first = n
+        unsure = False
+        for j in range(j0, j1):
+            py = ys[j]
+            rj = (j - jb) * nk - kb
+            for k in range(k0, k1):
+                pz = zs[k]
+                # _side_filtered for the three edges, same expressions.
+                r = (pz - z0) * dyab
+                s = (py - y0) * dzab
+                d = r - s
+                sure = abs(d) > (abs(r) + abs(s)) * _CCW_ERRBOUND
+                l_ab = d > 0
+                r = (pz - z1) * dybc
+                s = (py - y1) * dzbc
+                d = r - s
+                sure = sure and abs(d) > (abs(r) + abs(s)) * _CCW_ERRBOUND
+                l_bc = d > 0
+                r = (pz - z2) * dyca
+                s = (py - y2) * dzca
+                d = r - s
+                sure = sure and abs(d) > (abs(r) + abs(s)) * _CCW_ERRBOUND
+                l_ca = d > 0
+                if not sure:
+                    unsure = True
+                    break
+                if l_ab != l_bc or l_bc != l_ca:
+                    continue
+                x = ax - ((py - y0) * ky + (pz - z0) * kz)
+                x = min(max(x, xlo), xhi)
+                out_r[n] = rj + k
+                out_i[n] = _first_beyond_nb(xs, inv_hx, x)
+                out_w[n] = -1 if l_ab else 1
+                n += 1
+            if unsure:
+                break
+        if unsure:
+            n = first  # drop this triangle's crossings: the numpy path redoes it
+            exact[ne] = t
+            ne += 1
+            continue
+        for q in range(first, n):
+            count[out_r[q] + 1] += 1
+    # Counting sort by row; each crossing is inserted in order into its row's bucket.
+    for q in range(nj * nk):
+        count[q + 1] += count[q]
+    fill = count[:-1].copy()
+    si = np.empty(n, i_proto.dtype)
+    sw = np.empty(n, np.int8)
+    for c in range(n):
+        q = out_r[c]
+        lo = count[q]
+        p = fill[q]
+        fill[q] = p + 1
+        v = out_i[c]
+        while p > lo and si[p - 1] > v:
+            si[p] = si[p - 1]
+            sw[p] = sw[p - 1]
+            p -= 1
+        si[p] = v
+        sw[p] = out_w[c]
+    return jb, kb, nj, nk, count, si, sw, exact[:ne]
+
+
+def _crossing_rows(vertices: np.ndarray, faces: np.ndarray, xs, ys, zs, cap: int = 0) -> _Rows:
+    """All crossings of the centre rows with the triangles, grouped by row (for stepping).
+
+    Compiled (:func:`_crossing_rows_nb`); the few triangles that need exact
+    arithmetic go through :func:`_crossings_numpy` and are merged in. Equal to
+    ``_row_sorted_numpy(_crossings_numpy(...))`` (``tests/test_classify_step.py``
+    checks it). ``cap``: expected number of crossings (the buffers grow past it).
+    """
+    vt = np.ascontiguousarray(vertices.T, dtype=np.float64)
+    ft = np.ascontiguousarray(faces.T, dtype=np.int64)
+    proto = _i_proto(xs.size)
+    j0, k0, nj, nk, start, i, w, exact = _crossing_rows_nb(
+        vt[0], vt[1], vt[2], ft[0], ft[1], ft[2], xs, ys, zs, max(int(cap), 2 * ft.shape[1]), proto
+    )
+    if exact.size:
+        rest = _crossings_numpy(vertices, faces[exact], xs, ys, zs)
+        # Every triangle's lattice range lies in the box of all vertices.
+        r = np.concatenate([np.repeat(np.arange(nj * nk, dtype=np.int64), np.diff(start)), (rest.j - j0) * nk + (rest.k - k0)])
+        start, i, w = _group_rows_nb(r, np.concatenate([i, rest.i.astype(i.dtype)]), np.concatenate([w, rest.w]), nj * nk, proto)
+    return _Rows(int(j0), int(k0), int(nj), int(nk), start, i, w)
+
+
 # --------------------------------------------------------------------------- dense tagging
 @numba.njit(**_JIT)
 def _solid_box_nb(i, j, k, nx):
@@ -577,7 +844,31 @@ def _solid_box_nb(i, j, k, nx):
     return i_lo, i_hi, j_lo, j_hi + 1, k_lo, k_hi + 1
 
 
-def _solid_box(cr: _Crossings, shape3) -> tuple[slice, slice, slice] | None:
+@numba.njit(**_JIT)
+def _rows_solid_box_nb(j0, k0, nk, start, i, nx):
+    """:func:`_solid_box_nb` for crossings grouped by row (:class:`_Rows` fields)."""
+    big = np.iinfo(np.int64).max
+    i_lo, i_hi, j_lo, j_hi, k_lo, k_hi = big, -1, big, -1, big, -1
+    beyond = False
+    for r in range(start.size - 1):
+        j = j0 + r // nk
+        k = k0 + r % nk
+        for c in range(start[r], start[r + 1]):
+            if i[c] >= nx:
+                beyond = True
+                continue
+            i_lo = min(i_lo, np.int64(i[c]))
+            i_hi = max(i_hi, np.int64(i[c]))
+            j_lo = min(j_lo, j)
+            j_hi = max(j_hi, j)
+            k_lo = min(k_lo, k)
+            k_hi = max(k_hi, k)
+    if beyond and i_hi >= 0:
+        i_hi = nx
+    return i_lo, i_hi, j_lo, j_hi + 1, k_lo, k_hi + 1
+
+
+def _solid_box(cr, shape3) -> tuple[slice, slice, slice] | None:
     """Index box holding every solid centre of the crossings, plus a one-cell margin (None: no crossing in the grid).
 
     The margin holds the interface layer, so every cell a tagging leaves non-fluid
@@ -587,7 +878,10 @@ def _solid_box(cr: _Crossings, shape3) -> tuple[slice, slice, slice] | None:
     # Cells at or beyond the last crossing of their row have winding zero for a
     # closed surface, so the box ends before max(i) -- unless some row leaves the
     # body only past the grid's last centre: then the box runs to the grid's end.
-    i_lo, i_hi, j_lo, j_hi, k_lo, k_hi = _solid_box_nb(cr.i, cr.j, cr.k, nx)
+    if isinstance(cr, _Rows):
+        i_lo, i_hi, j_lo, j_hi, k_lo, k_hi = _rows_solid_box_nb(cr.j0, cr.k0, cr.nk, cr.start, cr.i, nx)
+    else:
+        i_lo, i_hi, j_lo, j_hi, k_lo, k_hi = _solid_box_nb(cr.i, cr.j, cr.k, nx)
     if i_lo > i_hi:
         return None
     return (
@@ -895,7 +1189,7 @@ class Transition:
     covered: np.ndarray
     region: tuple[slice, ...]
     body_outside: bool
-    _crossings: _Crossings | None = field(default=None, repr=False, compare=False)
+    _crossings: _Rows | None = field(default=None, repr=False, compare=False)
     _grid: Grid | None = field(default=None, repr=False, compare=False)
     _interface: str | None = field(default=None, repr=False, compare=False)
     _spent: bool = field(default=False, repr=False, compare=False)
@@ -968,46 +1262,10 @@ def _changed_runs(new: _Crossings, old: _Crossings, shape3):
 
 
 @numba.njit(**_JIT)
-def _row_sort_nb(i, j, k, w, nz):
-    """Crossings ordered by row ``j * nz + k``, then by ``i``: a counting sort over rows, an insertion sort within."""
-    n = i.size
-    si = np.empty(n, np.int64)
-    sj = np.empty(n, np.int64)
-    sk = np.empty(n, np.int64)
-    sw = np.empty(n, np.int8)
-    if n == 0:
-        return si, sj, sk, sw
-    lo = j[0] * nz + k[0]
-    hi = lo
-    for c in range(n):
-        r = j[c] * nz + k[c]
-        lo = min(lo, r)
-        hi = max(hi, r)
-    start = np.zeros(hi - lo + 2, np.int64)
-    for c in range(n):
-        start[j[c] * nz + k[c] - lo + 1] += 1
-    for r in range(1, start.size):
-        start[r] += start[r - 1]
-    fill = start[:-1].copy()
-    for c in range(n):
-        r = j[c] * nz + k[c] - lo
-        p = fill[r]
-        fill[r] += 1
-        si[p], sj[p], sk[p], sw[p] = i[c], j[c], k[c], w[c]
-    for r in range(start.size - 1):
-        for p in range(start[r] + 1, start[r + 1]):
-            q = p
-            while q > start[r] and si[q - 1] > si[q]:
-                si[q - 1], si[q] = si[q], si[q - 1]
-                sw[q - 1], sw[q] = sw[q], sw[q - 1]
-                q -= 1
-    return si, sj, sk, sw
+def _changed_nb(nj0, nk0, nnj, nnk, ns, ni, nw, oj0, ok0, onj, onk, os_, oi, ow, nx, ny, nz):
+    """Walk two crossing sets grouped by row (:class:`_Rows` fields, new then old); cells whose solid membership differs.
 
-
-@numba.njit(**_JIT)
-def _changed_nb(ni, nj, nk, nw, oi, oj, ok, ow, nx, ny, nz):
-    """Walk two row-sorted crossing sets row by row; cells whose solid membership differs.
-
+    Rows are visited in increasing ``j * nz + k`` over the union of the two boxes.
     Returns ``(fresh, covered, any_solid_new, open_rows_new, box)``: sorted C-order
     flat indices, whether any centre is solid for the new set, the number of rows
     whose new crossings do not sum to zero (as :func:`_warn_if_open` counts them),
@@ -1016,6 +1274,15 @@ def _changed_nb(ni, nj, nk, nw, oi, oj, ok, ow, nx, ny, nz):
     """
     nn, no = ni.size, oi.size
     nyz = ny * nz
+    # An empty box takes no part in the union.
+    if nn == 0:
+        nnj = 0
+    if no == 0:
+        onj = 0
+    jlo = min(nj0 if nnj > 0 else ny, oj0 if onj > 0 else ny)
+    jhi = max(nj0 + nnj if nnj > 0 else 0, oj0 + onj if onj > 0 else 0)
+    klo = min(nk0 if nnj > 0 else nz, ok0 if onj > 0 else nz)
+    khi = max(nk0 + nnk if nnj > 0 else 0, ok0 + onk if onj > 0 else 0)
     # Runs of changed cells [start, stop) along a row; each event ends at most one run.
     run_lo = np.empty(nn + no, np.int64)
     run_hi = np.empty(nn + no, np.int64)
@@ -1024,55 +1291,59 @@ def _changed_nb(ni, nj, nk, nw, oi, oj, ok, ow, nx, ny, nz):
     runs = 0
     any_solid = False
     open_rows = 0
-    a = 0
-    b = 0
-    while a < nn or b < no:
-        ra = nj[a] * nz + nk[a] if a < nn else nyz
-        rb = oj[b] * nz + ok[b] if b < no else nyz
-        row = min(ra, rb)
-        a1 = a
-        total = 0
-        while a1 < nn and nj[a1] * nz + nk[a1] == row:
-            total += nw[a1]
-            a1 += 1
-        b1 = b
-        while b1 < no and oj[b1] * nz + ok[b1] == row:
-            b1 += 1
-        open_rows += total != 0
-        same = (a1 - a) == (b1 - b)
-        if same:
-            for c in range(a1 - a):
-                if ni[a + c] != oi[b + c] or nw[a + c] != ow[b + c]:
-                    same = False
-                    break
-        if same and any_solid:
-            a, b = a1, b1
+    for j in range(jlo, jhi):
+        in_n = nnj > 0 and nj0 <= j < nj0 + nnj
+        in_o = onj > 0 and oj0 <= j < oj0 + onj
+        if not (in_n or in_o):
             continue
-        cn = 0
-        co = 0
-        while a < a1 or b < b1:
-            if b >= b1 or (a < a1 and ni[a] <= oi[b]):
-                p = ni[a]
-                cn += nw[a]
-                a += 1
-            else:
-                p = oi[b]
-                co += ow[b]
-                b += 1
-            q = nx
-            if a < a1:
-                q = min(q, ni[a])
-            if b < b1:
-                q = min(q, oi[b])
-            if q <= p:
+        for k in range(klo, khi):
+            a = a1 = b = b1 = 0
+            if in_n and nk0 <= k < nk0 + nnk:
+                q = (j - nj0) * nnk + (k - nk0)
+                a, a1 = ns[q], ns[q + 1]
+            if in_o and ok0 <= k < ok0 + onk:
+                q = (j - oj0) * onk + (k - ok0)
+                b, b1 = os_[q], os_[q + 1]
+            if a == a1 and b == b1:
                 continue
-            any_solid |= cn != 0
-            if (cn != 0) != (co != 0):
-                run_lo[runs] = p
-                run_hi[runs] = q
-                run_row[runs] = row
-                run_fresh[runs] = co != 0
-                runs += 1
+            row = j * nz + k
+            total = 0
+            for c in range(a, a1):
+                total += nw[c]
+            open_rows += total != 0
+            same = (a1 - a) == (b1 - b)
+            if same:
+                for c in range(a1 - a):
+                    if ni[a + c] != oi[b + c] or nw[a + c] != ow[b + c]:
+                        same = False
+                        break
+            if same and any_solid:
+                continue
+            cn = 0
+            co = 0
+            while a < a1 or b < b1:
+                if b >= b1 or (a < a1 and ni[a] <= oi[b]):
+                    p = np.int64(ni[a])
+                    cn += nw[a]
+                    a += 1
+                else:
+                    p = np.int64(oi[b])
+                    co += ow[b]
+                    b += 1
+                q = np.int64(nx)
+                if a < a1:
+                    q = min(q, np.int64(ni[a]))
+                if b < b1:
+                    q = min(q, np.int64(oi[b]))
+                if q <= p:
+                    continue
+                any_solid |= cn != 0
+                if (cn != 0) != (co != 0):
+                    run_lo[runs] = p
+                    run_hi[runs] = q
+                    run_row[runs] = row
+                    run_fresh[runs] = co != 0
+                    runs += 1
     # Counting sort by the cell's position along the row (the slowest C-order
     # index): rows are visited in increasing order, so each bucket fills sorted
     # and the output is in C order without a comparison sort.
@@ -1110,23 +1381,19 @@ def _changed_nb(ni, nj, nk, nw, oi, oj, ok, ow, nx, ny, nz):
     return fresh, covered, any_solid, open_rows, box
 
 
-def _row_sorted(cr: _Crossings, shape3) -> _Crossings:
-    """The crossings ordered by row, then by position along the row."""
-    if cr.row_sorted:
-        return cr
-    return _Crossings(*_row_sort_nb(cr.i, cr.j, cr.k, cr.w, shape3[2]), row_sorted=True)
-
-
-def _changed_cells(new: _Crossings, old: _Crossings, shape3, with_box: bool = False):
+def _changed_cells(new, old, shape3, with_box: bool = False):
     """Cells whose solid membership differs between two crossing sets (compiled twin of :func:`_changed_runs`).
 
-    Returns ``(fresh_flat, covered_flat, any_solid_now)`` as :func:`_changed_runs`
-    does, and the number of rows crossing ``new`` unevenly (see :func:`_warn_if_open`);
-    with ``with_box``, also the inclusive index bounds of the changed cells.
+    ``new``, ``old``: :class:`_Crossings` or :class:`_Rows`. Returns
+    ``(fresh_flat, covered_flat, any_solid_now)`` as :func:`_changed_runs` does, and
+    the number of rows crossing ``new`` unevenly (see :func:`_warn_if_open`); with
+    ``with_box``, also the inclusive index bounds of the changed cells.
     """
     nx, ny, nz = shape3
-    new, old = _row_sorted(new, shape3), _row_sorted(old, shape3)
-    fresh, covered, any_solid, open_rows, box = _changed_nb(new.i, new.j, new.k, new.w, old.i, old.j, old.k, old.w, nx, ny, nz)
+    n, o = _row_sorted(new, shape3), _row_sorted(old, shape3)
+    fresh, covered, any_solid, open_rows, box = _changed_nb(
+        n.j0, n.k0, n.nj, n.nk, n.start, n.i, n.w, o.j0, o.k0, o.nj, o.nk, o.start, o.i, o.w, nx, ny, nz
+    )
     if with_box:
         return fresh, covered, bool(any_solid), int(open_rows), box
     return fresh, covered, bool(any_solid), int(open_rows)
@@ -1383,7 +1650,7 @@ def step_tags(
             "pass a copy (np.ascontiguousarray) or leave overwrite_previous False"
         )
     v_now, f_now = as_triangles(surface_now)
-    new = _row_sorted(_crossings(v_now, f_now, *axes), shape3)  # kept sorted for the next step
+    new = _crossing_rows(v_now, f_now, *axes, cap=old.i.size + old.i.size // 4)  # kept for the next step
     fresh, covered, any_solid, open_rows, changed_box = _changed_cells(new, old, shape3, with_box=True)
     _warn_open_rows(open_rows)
     if overwrite_previous:
