@@ -635,7 +635,7 @@ def _row_sorted(cr, shape3) -> _Rows:
 
 
 @numba.njit(**_JIT)
-def _crossing_rows_nb(vx, vy, vz, f0, f1, f2, xs, ys, zs, cap, i_proto):
+def _crossing_rows_nb(v, f, xs, ys, zs, cap, i_proto):
     """:func:`_crossings_nb`'s crossings grouped by row, in one pass over the triangles.
 
     Same predicates and abscissae, same expressions (bit for bit). The rows are
@@ -644,25 +644,26 @@ def _crossing_rows_nb(vx, vy, vz, f0, f1, f2, xs, ys, zs, cap, i_proto):
     into buffers of ``cap`` crossings that grow by doubling, and each row's count
     is kept on the way for the counting sort at the end.
 
-    Returns ``(j0, k0, nj, nk, start, i, w, exact)``: the :class:`_Rows` fields, and
+    ``v``: (n, 3) vertices, ``f``: (m, 3) faces, both C-contiguous (no transposed
+    copies: a triangle's data are adjacent). Returns ``(j0, k0, nj, nk, start, i, w, exact)``: the :class:`_Rows` fields, and
     the triangles left to the numpy path (exact arithmetic needed), whose
     crossings are not included.
     """
-    m = f0.size
+    m = f.shape[0]
     inv_hx = 1.0 / (xs[1] - xs[0]) if xs.size > 1 else 1.0
     inv_hy = 1.0 / (ys[1] - ys[0]) if ys.size > 1 else 1.0
     inv_hz = 1.0 / (zs[1] - zs[0]) if zs.size > 1 else 1.0
     # Lattice range of each vertex: a triangle's range [first of its lowest
     # coordinate, stop of its highest) is the min of its vertices' firsts and the
     # max of their stops (both are monotone in the coordinate).
-    nv = vy.size
+    nv = v.shape[0]
     vj = np.empty((nv, 2), np.int64)
     vk = np.empty((nv, 2), np.int64)
     jb, je, kb, ke = ys.size, 0, zs.size, 0
-    for v in range(nv):
-        j0, j1 = _range_nb(ys, inv_hy, vy[v], vy[v])
-        k0, k1 = _range_nb(zs, inv_hz, vz[v], vz[v])
-        vj[v, 0], vj[v, 1], vk[v, 0], vk[v, 1] = j0, j1, k0, k1
+    for q in range(nv):
+        j0, j1 = _range_nb(ys, inv_hy, v[q, 1], v[q, 1])
+        k0, k1 = _range_nb(zs, inv_hz, v[q, 2], v[q, 2])
+        vj[q, 0], vj[q, 1], vk[q, 0], vk[q, 1] = j0, j1, k0, k1
         jb, je, kb, ke = min(jb, j0), max(je, j1), min(kb, k0), max(ke, k1)
     nj = max(je - jb, 0)
     nk = max(ke - kb, 0)
@@ -675,7 +676,7 @@ def _crossing_rows_nb(vx, vy, vz, f0, f1, f2, xs, ys, zs, cap, i_proto):
     ne = 0
     n = 0
     for t in range(m):
-        a, b, c = f0[t], f1[t], f2[t]
+        a, b, c = f[t, 0], f[t, 1], f[t, 2]
         j0 = min(min(vj[a, 0], vj[b, 0]), vj[c, 0])
         j1 = max(max(vj[a, 1], vj[b, 1]), vj[c, 1])
         if j1 <= j0:
@@ -684,8 +685,8 @@ def _crossing_rows_nb(vx, vy, vz, f0, f1, f2, xs, ys, zs, cap, i_proto):
         k1 = max(max(vk[a, 1], vk[b, 1]), vk[c, 1])
         if k1 <= k0:
             continue
-        y0, y1, y2 = vy[a], vy[b], vy[c]
-        z0, z1, z2 = vz[a], vz[b], vz[c]
+        y0, y1, y2 = v[a, 1], v[b, 1], v[c, 1]
+        z0, z1, z2 = v[a, 2], v[b, 2], v[c, 2]
         # Zero projected area (exactly) -> never crossed; _orient_sign's cases.
         dyab = y1 - y0
         dzab = z1 - z0
@@ -715,7 +716,7 @@ def _crossing_rows_nb(vx, vy, vz, f0, f1, f2, xs, ys, zs, cap, i_proto):
             i2[:n] = out_i[:n]
             w2[:n] = out_w[:n]
             out_r, out_i, out_w = r2, i2, w2
-        x0, x1, x2 = vx[a], vx[b], vx[c]
+        x0, x1, x2 = v[a, 0], v[b, 0], v[c, 0]
         dybc, dzbc = y2 - y1, z2 - z1
         dyca, dzca = y0 - y2, z0 - z2
         e1x = x1 - x0
@@ -804,12 +805,10 @@ def _crossing_rows(vertices: np.ndarray, faces: np.ndarray, xs, ys, zs, cap: int
     ``_row_sorted_numpy(_crossings_numpy(...))`` (``tests/test_classify_step.py``
     checks it). ``cap``: expected number of crossings (the buffers grow past it).
     """
-    vt = np.ascontiguousarray(vertices.T, dtype=np.float64)
-    ft = np.ascontiguousarray(faces.T, dtype=np.int64)
+    v = np.ascontiguousarray(vertices, dtype=np.float64)
+    f = np.ascontiguousarray(faces, dtype=np.int64)
     proto = _i_proto(xs.size)
-    j0, k0, nj, nk, start, i, w, exact = _crossing_rows_nb(
-        vt[0], vt[1], vt[2], ft[0], ft[1], ft[2], xs, ys, zs, max(int(cap), 2 * ft.shape[1]), proto
-    )
+    j0, k0, nj, nk, start, i, w, exact = _crossing_rows_nb(v, f, xs, ys, zs, max(int(cap), 2 * f.shape[0]), proto)
     if exact.size:
         rest = _crossings_numpy(vertices, faces[exact], xs, ys, zs)
         # Every triangle's lattice range lies in the box of all vertices.
@@ -1192,6 +1191,7 @@ class Transition:
     _crossings: _Rows | None = field(default=None, repr=False, compare=False)
     _grid: Grid | None = field(default=None, repr=False, compare=False)
     _interface: str | None = field(default=None, repr=False, compare=False)
+    _axes: tuple | None = field(default=None, repr=False, compare=False)
     _spent: bool = field(default=False, repr=False, compare=False)
 
     def __post_init__(self) -> None:
@@ -1488,12 +1488,19 @@ def _recheck_nb(flat_tags, cell, i, j, k, partner, plain, nx, ny, nz):
 
 
 @numba.njit(**_JIT)
-def _retag_nb(flat_tags, joined, left, partner, plain, nx, ny, nz):
+def _retag_nb(flat_tags, joined, left, partner, plain, nx, ny, nz, set_members):
     """Compiled twin of :func:`_retag`'s updates (same rules, one cell at a time).
 
-    Each cell's (i, j, k) is found once; its neighbours' follow by offsets.
+    Each cell's (i, j, k) is found once; its neighbours' follow by offsets. With
+    ``set_members``, first give the ``joined`` cells the partner code and the
+    ``left`` cells the plain one (what :func:`_retag` expects done already).
     """
     nyz = ny * nz
+    if set_members:
+        for cell in joined:
+            flat_tags[cell] = partner
+        for cell in left:
+            flat_tags[cell] = plain
     for cell in joined:
         i = cell // nyz
         rem = cell - i * nyz
@@ -1520,19 +1527,21 @@ def _retag_nb(flat_tags, joined, left, partner, plain, nx, ny, nz):
 
 
 def _retag_compiled(
-    flat_tags: np.ndarray, fresh: np.ndarray, covered: np.ndarray, shape3, interface: str, box=None
+    flat_tags: np.ndarray, fresh: np.ndarray, covered: np.ndarray, shape3, interface: str, box=None, set_members=False
 ) -> tuple[slice, ...]:
     """:func:`_retag` (same arguments, same updates in place, same returned box) on the compiled kernel.
 
     ``box``: the inclusive index bounds of the changed cells when the caller has
     them (as :func:`_changed_nb` returns them); found from the cells otherwise.
+    ``set_members``: ``flat_tags`` does not yet hold SOLID at ``covered`` and FLUID
+    at ``fresh``; the kernel sets them first.
     """
     if interface == "fluid-side":
         joined, left, partner, plain = covered, fresh, CellTag.SOLID, CellTag.FLUID
     else:
         joined, left, partner, plain = fresh, covered, CellTag.FLUID, CellTag.SOLID
     nx, ny, nz = shape3
-    _retag_nb(flat_tags, joined, left, np.uint8(partner), np.uint8(plain), nx, ny, nz)
+    _retag_nb(flat_tags, joined, left, np.uint8(partner), np.uint8(plain), nx, ny, nz, set_members)
     if box is None:
         ends = [a[[0, -1]] for a in (fresh, covered) if a.size]  # sorted: first and last cell only bound i
         rem = np.concatenate([fresh, covered]) % (ny * nz)
@@ -1616,7 +1625,7 @@ def step_tags(
     interface = _check_interface(interface)
     grid = _check_grid(grid)
     shape3 = grid.shape if grid.ndim == 3 else (*grid.shape, 1)
-    axes = _axes3(grid)
+    axes = None
     if isinstance(previous, Transition) and previous._spent:
         raise InputError(
             "this Transition's tags were overwritten by step_tags(..., overwrite_previous=True); "
@@ -1630,6 +1639,7 @@ def step_tags(
             )
         prev = previous.tags
         old = previous._crossings
+        axes = previous._axes if previous._axes is not None else _axes3(grid)
     else:
         prev = previous.tags if isinstance(previous, Transition) else previous
         if not overwrite_previous:
@@ -1643,6 +1653,7 @@ def step_tags(
         if previous_surface is None:
             raise InputError("previous_surface is required when previous is a tag array; pass the body at the previous pose")
         v_old, f_old = as_triangles(previous_surface)
+        axes = _axes3(grid)
         old = _crossings(v_old, f_old, *axes)
     if overwrite_previous and not (prev.flags.writeable and prev.flags.c_contiguous):
         raise InputError(
@@ -1668,10 +1679,9 @@ def step_tags(
         if box is not None:
             tags[box] = prev.reshape(shape3)[box]
     flat_tags = tags.reshape(-1)
-    flat_tags[covered] = CellTag.SOLID
-    flat_tags[fresh] = CellTag.FLUID
     if fresh.size or covered.size:
-        region3 = _retag_compiled(flat_tags, fresh, covered, shape3, interface, changed_box)
+        # Sets SOLID at covered, FLUID at fresh, then the interface layer around them.
+        region3 = _retag_compiled(flat_tags, fresh, covered, shape3, interface, changed_box, set_members=True)
     else:
         region3 = (slice(0, 0),) * 3
     outside = not any_solid
@@ -1686,4 +1696,5 @@ def step_tags(
         _crossings=new,
         _grid=grid,
         _interface=interface,
+        _axes=axes,
     )

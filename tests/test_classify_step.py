@@ -140,9 +140,7 @@ def test_crossings_grouped_by_row_equal_the_numpy_path(name, seed):
     # The box of the solid centres, from the rows and from the numpy crossings.
     assert _solid_box(rows, shape3) == _solid_box(ref, shape3)
     # Buffers that must grow many times (capacity 1) give the same rows.
-    v, f = mesh
-    vt, ft = np.ascontiguousarray(v.T), np.ascontiguousarray(f.T)
-    small = _crossing_rows_nb(vt[0], vt[1], vt[2], ft[0], ft[1], ft[2], *axes, 1, _i_proto(shape3[0]))
+    small = _crossing_rows_nb(*mesh, *axes, 1, _i_proto(shape3[0]))
     np.testing.assert_array_equal(small[4], rows.start)
     np.testing.assert_array_equal(small[5], rows.i)
     np.testing.assert_array_equal(small[6], rows.w)
@@ -159,9 +157,7 @@ def test_crossings_grouped_by_row_merge_the_exact_cases(name):
         mesh = box_mesh((-0.5, -0.5, -0.5), (0.5, 0.25, 0.375))
     else:
         mesh = _snapped(sphere_mesh(0.8, 2) if name == "sphere" else torus_mesh(0.55, 0.25, 24, 12), h)
-    v, f = mesh
-    vt, ft = np.ascontiguousarray(v.T), np.ascontiguousarray(f.T)
-    assert _crossing_rows_nb(vt[0], vt[1], vt[2], ft[0], ft[1], ft[2], *axes, 0, _i_proto(shape3[0]))[7].size > 0
+    assert _crossing_rows_nb(*mesh, *axes, 0, _i_proto(shape3[0]))[7].size > 0
     # Oracle: the numpy reference path.
     ref = _row_sorted_numpy(_crossings_numpy(*mesh, *axes), shape3)
     rows = _crossing_rows(*mesh, *axes)
@@ -386,3 +382,9 @@ def test_compiled_retag_equals_the_numpy_path(interface):
     np.testing.assert_array_equal(again, ref)
     np.testing.assert_array_equal(got, ref)
     np.testing.assert_array_equal(got.reshape(shape3), classify(b, grid, interface=interface))
+    # The kernel setting the members itself, from the tags of the previous pose.
+    # Oracle: the numpy reference path (_retag, members set beforehand).
+    unset = classify(a, grid, interface=interface).reshape(-1)
+    assert not np.array_equal(unset, start)
+    assert _retag_compiled(unset, fresh, covered, shape3, interface, box, set_members=True) == region
+    np.testing.assert_array_equal(unset, ref)
