@@ -1283,14 +1283,22 @@ def _changed_nb(nj0, nk0, nnj, nnk, ns, ni, nw, oj0, ok0, onj, onk, os_, oi, ow,
     jhi = max(nj0 + nnj if nnj > 0 else 0, oj0 + onj if onj > 0 else 0)
     klo = min(nk0 if nnj > 0 else nz, ok0 if onj > 0 else nz)
     khi = max(nk0 + nnk if nnj > 0 else 0, ok0 + onk if onj > 0 else 0)
-    # Runs of changed cells [start, stop) along a row; each event ends at most one run.
-    run_lo = np.empty(nn + no, np.int64)
-    run_hi = np.empty(nn + no, np.int64)
-    run_row = np.empty(nn + no, np.int64)
-    run_fresh = np.empty(nn + no, np.bool_)
-    runs = 0
+    # Runs of changed cells [lo, hi) along a row, fresh (f) and covered (c) apart;
+    # each event ends at most one run. diff_*: +1 at a run's start, -1 at its stop.
+    f_lo = np.empty(nn + no, np.int64)
+    f_hi = np.empty(nn + no, np.int64)
+    f_row = np.empty(nn + no, np.int64)
+    c_lo = np.empty(nn + no, np.int64)
+    c_hi = np.empty(nn + no, np.int64)
+    c_row = np.empty(nn + no, np.int64)
+    diff_f = np.zeros(nx + 1, np.int64)
+    diff_c = np.zeros(nx + 1, np.int64)
+    nf = 0
+    nc = 0
     any_solid = False
     open_rows = 0
+    # Bounds of the rows holding a run (j, k inclusive).
+    jmin, jmax, kmin, kmax = ny, -1, nz, -1
     for j in range(jlo, jhi):
         in_n = nnj > 0 and nj0 <= j < nj0 + nnj
         in_o = onj > 0 and oj0 <= j < oj0 + onj
@@ -1307,77 +1315,113 @@ def _changed_nb(nj0, nk0, nnj, nnk, ns, ni, nw, oj0, ok0, onj, onk, os_, oi, ow,
             if a == a1 and b == b1:
                 continue
             row = j * nz + k
-            total = 0
-            for c in range(a, a1):
-                total += nw[c]
-            open_rows += total != 0
-            same = (a1 - a) == (b1 - b)
-            if same:
-                for c in range(a1 - a):
-                    if ni[a + c] != oi[b + c] or nw[a + c] != ow[b + c]:
-                        same = False
-                        break
-            if same and any_solid:
-                continue
-            cn = 0
-            co = 0
-            while a < a1 or b < b1:
-                if b >= b1 or (a < a1 and ni[a] <= oi[b]):
-                    p = np.int64(ni[a])
-                    cn += nw[a]
-                    a += 1
-                else:
-                    p = np.int64(oi[b])
-                    co += ow[b]
-                    b += 1
-                q = np.int64(nx)
-                if a < a1:
-                    q = min(q, np.int64(ni[a]))
-                if b < b1:
-                    q = min(q, np.int64(oi[b]))
-                if q <= p:
+            nf0, nc0 = nf, nc
+            if a1 - a == 2 and b1 - b == 2 and nw[a] + nw[a + 1] == 0 and ow[b] + ow[b + 1] == 0:
+                # The common row: one solid interval [p0, p1) now, [q0, q1) before
+                # (a closed row crossing twice; i <= nx).
+                p0, p1 = np.int64(ni[a]), np.int64(ni[a + 1])
+                q0, q1 = np.int64(oi[b]), np.int64(oi[b + 1])
+                any_solid |= p1 > p0
+                if p0 == q0 and p1 == q1:
                     continue
-                any_solid |= cn != 0
-                if (cn != 0) != (co != 0):
-                    run_lo[runs] = p
-                    run_hi[runs] = q
-                    run_row[runs] = row
-                    run_fresh[runs] = co != 0
-                    runs += 1
+                # covered = [p0, p1) minus [q0, q1); fresh = [q0, q1) minus [p0, p1).
+                hi = min(p1, q0)
+                if hi > p0:
+                    c_lo[nc], c_hi[nc], c_row[nc] = p0, hi, row
+                    nc += 1
+                lo = max(p0, q1)
+                if p1 > lo:
+                    c_lo[nc], c_hi[nc], c_row[nc] = lo, p1, row
+                    nc += 1
+                hi = min(q1, p0)
+                if hi > q0:
+                    f_lo[nf], f_hi[nf], f_row[nf] = q0, hi, row
+                    nf += 1
+                lo = max(q0, p1)
+                if q1 > lo:
+                    f_lo[nf], f_hi[nf], f_row[nf] = lo, q1, row
+                    nf += 1
+            else:
+                total = 0
+                for c in range(a, a1):
+                    total += nw[c]
+                open_rows += total != 0
+                same = (a1 - a) == (b1 - b)
+                if same:
+                    for c in range(a1 - a):
+                        if ni[a + c] != oi[b + c] or nw[a + c] != ow[b + c]:
+                            same = False
+                            break
+                if same and any_solid:
+                    continue
+                cn = 0
+                co = 0
+                while a < a1 or b < b1:
+                    if b >= b1 or (a < a1 and ni[a] <= oi[b]):
+                        p = np.int64(ni[a])
+                        cn += nw[a]
+                        a += 1
+                    else:
+                        p = np.int64(oi[b])
+                        co += ow[b]
+                        b += 1
+                    q = np.int64(nx)
+                    if a < a1:
+                        q = min(q, np.int64(ni[a]))
+                    if b < b1:
+                        q = min(q, np.int64(oi[b]))
+                    if q <= p:
+                        continue
+                    any_solid |= cn != 0
+                    if cn != 0 and co == 0:
+                        c_lo[nc], c_hi[nc], c_row[nc] = p, q, row
+                        nc += 1
+                    elif co != 0 and cn == 0:
+                        f_lo[nf], f_hi[nf], f_row[nf] = p, q, row
+                        nf += 1
+            if nf > nf0 or nc > nc0:
+                jmin, jmax = min(jmin, j), max(jmax, j)
+                kmin, kmax = min(kmin, k), max(kmax, k)
     # Counting sort by the cell's position along the row (the slowest C-order
     # index): rows are visited in increasing order, so each bucket fills sorted
-    # and the output is in C order without a comparison sort.
-    start_f = np.zeros(nx + 1, np.int64)
-    start_c = np.zeros(nx + 1, np.int64)
-    for r in range(runs):
-        start = start_f if run_fresh[r] else start_c
-        for c in range(run_lo[r], run_hi[r]):
-            start[c + 1] += 1
-    for c in range(nx):
-        start_f[c + 1] += start_f[c]
-        start_c[c + 1] += start_c[c]
-    fresh = np.empty(start_f[nx], np.int64)
-    covered = np.empty(start_c[nx], np.int64)
-    # box: index bounds of the changed cells (inclusive), j and k from the row.
-    box = np.array([nx, -1, ny, -1, nz, -1], np.int64)
-    for r in range(runs):
-        row = run_row[r]
-        j = row // nz
-        k = row - j * nz
-        box[0] = min(box[0], run_lo[r])
-        box[1] = max(box[1], run_hi[r] - 1)
-        box[2] = min(box[2], j)
-        box[3] = max(box[3], j)
-        box[4] = min(box[4], k)
-        box[5] = max(box[5], k)
-        if run_fresh[r]:
-            for c in range(run_lo[r], run_hi[r]):
-                fresh[start_f[c]] = c * nyz + row
-                start_f[c] += 1
-        else:
-            for c in range(run_lo[r], run_hi[r]):
-                covered[start_c[c]] = c * nyz + row
-                start_c[c] += 1
+    # and the output is in C order without a comparison sort. Bucket sizes come
+    # from the runs' ends (a difference array), not cell by cell.
+    ilo, ihi = nx, -1
+    for r in range(nf):
+        diff_f[f_lo[r]] += 1
+        diff_f[f_hi[r]] -= 1
+        ilo, ihi = min(ilo, f_lo[r]), max(ihi, f_hi[r] - 1)
+    for r in range(nc):
+        diff_c[c_lo[r]] += 1
+        diff_c[c_hi[r]] -= 1
+        ilo, ihi = min(ilo, c_lo[r]), max(ihi, c_hi[r] - 1)
+    # diff -> bucket starts: running count of open runs = cells at c; their prefix sum.
+    open_f = 0
+    open_c = 0
+    sum_f = 0
+    sum_c = 0
+    for c in range(nx + 1):
+        open_f += diff_f[c]
+        open_c += diff_c[c]
+        diff_f[c] = sum_f
+        diff_c[c] = sum_c
+        sum_f += open_f
+        sum_c += open_c
+    fresh = np.empty(sum_f, np.int64)
+    covered = np.empty(sum_c, np.int64)
+    for r in range(nf):
+        row = f_row[r]
+        for c in range(f_lo[r], f_hi[r]):
+            fresh[diff_f[c]] = c * nyz + row
+            diff_f[c] += 1
+    for r in range(nc):
+        row = c_row[r]
+        for c in range(c_lo[r], c_hi[r]):
+            covered[diff_c[c]] = c * nyz + row
+            diff_c[c] += 1
+    box = np.array([ilo, ihi, jmin, jmax, kmin, kmax], np.int64)
+    if ihi < 0:
+        box[:] = np.array([nx, -1, ny, -1, nz, -1], np.int64)
     return fresh, covered, any_solid, open_rows, box
 
 
