@@ -68,6 +68,9 @@ from fractions import Fraction
 
 import numba
 import numpy as np
+from llvmlite import ir as _llvm_ir
+from numba.core import types as _nb_types
+from numba.extending import intrinsic as _nb_intrinsic
 
 from .errors import IbprepWarning, InputError
 from .grid import Grid, NestedGrid
@@ -1531,13 +1534,41 @@ def _recheck_nb(flat_tags, cell, i, j, k, partner, plain, nx, ny, nz):
         _set_interface_nb(flat_tags, cell + 1, i, j, k + 1, partner, plain, nx, ny, nz)
 
 
+@_nb_intrinsic
+def _prefetch_nb(typingctx, arr, idx):
+    """Hint the cache line holding ``arr[idx]`` in, for writing (LLVM's prefetch; never faults, so no bounds check)."""
+    if not isinstance(arr, _nb_types.Array) or not isinstance(idx, _nb_types.Integer):
+        return None
+
+    def codegen(context, builder, signature, args):
+        aryty, idxty = signature.args
+        data = context.make_array(aryty)(context, builder, args[0]).data
+        ptr = builder.gep(data, [context.cast(builder, args[1], idxty, _nb_types.intp)])
+        i8p = builder.bitcast(ptr, _llvm_ir.IntType(8).as_pointer())
+        i32 = _llvm_ir.IntType(32)
+        fnty = _llvm_ir.FunctionType(_llvm_ir.VoidType(), [i8p.type, i32, i32, i32])
+        fn = builder.module.declare_intrinsic("llvm.prefetch", [i8p.type], fnty)
+        builder.call(fn, [i8p, i32(1), i32(3), i32(1)])  # write, keep in all levels, data
+        return context.get_dummy_value()
+
+    return _nb_types.void(arr, idx), codegen
+
+
+# Cells ahead whose neighbours' cache lines the retag kernel asks for: the cells
+# are sparse in a large array, so each neighbour is a miss, and prefetching lets
+# many misses be in flight at once.
+_PREFETCH_AHEAD = 16
+
+
 @numba.njit(**_JIT)
 def _retag_nb(flat_tags, joined, left, partner, plain, nx, ny, nz, set_members):
     """Compiled twin of :func:`_retag`'s updates (same rules, one cell at a time).
 
     Each cell's (i, j, k) is found once; its neighbours' follow by offsets. With
     ``set_members``, first give the ``joined`` cells the partner code and the
-    ``left`` cells the plain one (what :func:`_retag` expects done already).
+    ``left`` cells the plain one (what :func:`_retag` expects done already). The
+    cache lines of the face neighbours along i and j of the cell
+    ``_PREFETCH_AHEAD`` places on are prefetched (those along k share lines).
     """
     nyz = ny * nz
     if set_members:
@@ -1545,7 +1576,15 @@ def _retag_nb(flat_tags, joined, left, partner, plain, nx, ny, nz, set_members):
             flat_tags[cell] = partner
         for cell in left:
             flat_tags[cell] = plain
-    for cell in joined:
+    nj = joined.size
+    for q in range(nj):
+        if q + _PREFETCH_AHEAD < nj:
+            ahead = joined[q + _PREFETCH_AHEAD]
+            _prefetch_nb(flat_tags, ahead - nyz)
+            _prefetch_nb(flat_tags, ahead + nyz)
+            _prefetch_nb(flat_tags, ahead - nz)
+            _prefetch_nb(flat_tags, ahead + nz)
+        cell = joined[q]
         i = cell // nyz
         rem = cell - i * nyz
         j = rem // nz
@@ -1562,7 +1601,16 @@ def _retag_nb(flat_tags, joined, left, partner, plain, nx, ny, nz, set_members):
             flat_tags[cell - 1] = 2
         if k < nz - 1 and flat_tags[cell + 1] != partner:
             flat_tags[cell + 1] = 2
-    for cell in left:
+    nl = left.size
+    for q in range(nl):
+        if q + _PREFETCH_AHEAD < nl:
+            ahead = left[q + _PREFETCH_AHEAD]
+            _prefetch_nb(flat_tags, ahead)
+            _prefetch_nb(flat_tags, ahead - nyz)
+            _prefetch_nb(flat_tags, ahead + nyz)
+            _prefetch_nb(flat_tags, ahead - nz)
+            _prefetch_nb(flat_tags, ahead + nz)
+        cell = left[q]
         i = cell // nyz
         rem = cell - i * nyz
         j = rem // nz
