@@ -409,6 +409,22 @@ def _range_nb(axis, inv_h, lo, hi):
 
 
 @numba.njit(**_JIT)
+def _point_range_nb(axis, inv_h, y):
+    """``_range_nb(axis, inv_h, y, y)`` with one guess: [first, stop) of the centres equal to y (stop - first is 0 or 1)."""
+    n = axis.size
+    g = (y - axis[0]) * inv_h
+    first = 0 if not g > 0.0 else (n if g >= n else int(g))
+    while first < n and axis[first] < y:
+        first += 1
+    while first > 0 and axis[first - 1] >= y:
+        first -= 1
+    stop = first
+    while stop < n and axis[stop] <= y:
+        stop += 1
+    return first, stop
+
+
+@numba.njit(**_JIT)
 def _first_beyond_nb(xs, inv_h, x):
     """searchsorted(xs, x, side='right') for uniformly spaced sorted xs (guess, then exact comparisons)."""
     n = xs.size
@@ -664,8 +680,8 @@ def _crossing_rows_nb(v, f, xs, ys, zs, cap, i_proto):
     vk = np.empty((nv, 2), np.int64)
     jb, je, kb, ke = ys.size, 0, zs.size, 0
     for q in range(nv):
-        j0, j1 = _range_nb(ys, inv_hy, v[q, 1], v[q, 1])
-        k0, k1 = _range_nb(zs, inv_hz, v[q, 2], v[q, 2])
+        j0, j1 = _point_range_nb(ys, inv_hy, v[q, 1])
+        k0, k1 = _point_range_nb(zs, inv_hz, v[q, 2])
         vj[q, 0], vj[q, 1], vk[q, 0], vk[q, 1] = j0, j1, k0, k1
         jb, je, kb, ke = min(jb, j0), max(je, j1), min(kb, k0), max(ke, k1)
     nj = max(je - jb, 0)

@@ -23,6 +23,8 @@ from ibprep.classify import (
     _crossing_rows_nb,
     _crossings_numpy,
     _i_proto,
+    _lattice_range,
+    _point_range_nb,
     _row_sorted,
     _row_sorted_numpy,
     _solid_box,
@@ -117,6 +119,18 @@ def test_compiled_crossings_on_a_2d_grid_equal_the_numpy_path():
     ref = _crossings_numpy(v, f, *axes)
     assert ref.i.size > 10
     np.testing.assert_array_equal(_key(_crossings(v, f, *axes)), _key(ref))
+
+
+def test_point_range_equals_the_lattice_range():
+    # A vertex's lattice range [first, stop): the centres lying exactly at y.
+    for axis in _axes3(GRID)[1:]:
+        h = axis[1] - axis[0]
+        y = np.concatenate([axis, np.nextafter(axis, -np.inf), np.nextafter(axis, np.inf), axis + h / 2, [axis[0] - 3, axis[-1] + 3]])
+        got = np.array([_point_range_nb(axis, 1.0 / h, v) for v in y]).T
+        # Oracles: the numpy reference path (_lattice_range) and numpy's searchsorted.
+        np.testing.assert_array_equal(got, np.array(_lattice_range(axis, y, y)))
+        np.testing.assert_array_equal(got, [np.searchsorted(axis, y, "left"), np.searchsorted(axis, y, "right")])
+        assert np.count_nonzero(got[1] - got[0]) == axis.size  # the centres themselves
 
 
 def _assert_rows_equal(rows, ref, nz):
