@@ -691,6 +691,7 @@ def _crossing_rows_nb(v, f, xs, ys, zs, cap, i_proto):
     out_r = np.empty(cap, np.int64)
     out_i = np.empty(cap, i_proto.dtype)
     out_w = np.empty(cap, np.int8)
+    out_x = np.empty(cap, np.float64)  # crossing abscissae, until their centre index is found
     exact = np.empty(m, np.int64)
     ne = 0
     n = 0
@@ -735,6 +736,7 @@ def _crossing_rows_nb(v, f, xs, ys, zs, cap, i_proto):
             i2[:n] = out_i[:n]
             w2[:n] = out_w[:n]
             out_r, out_i, out_w = r2, i2, w2
+            out_x = np.empty(grown, np.float64)  # holds only the current triangle's
         x0, x1, x2 = v[a, 0], v[b, 0], v[c, 0]
         dybc, dzbc = y2 - y1, z2 - z1
         dyca, dzca = y0 - y2, z0 - z2
@@ -753,6 +755,10 @@ def _crossing_rows_nb(v, f, xs, ys, zs, cap, i_proto):
             kz = 0.0
             ax = 0.5 * (xlo + xhi)
         first = n
+        # Rows of at most 3 candidates (small triangles): the in/out branch would
+        # mispredict often, so every candidate is written and kept by n += inside.
+        # Longer rows keep the branch (it follows the row's one inside run).
+        short = k1 - k0 <= 3
         unsure = False
         for j in range(j0, j1):
             py = ys[j]
@@ -778,14 +784,13 @@ def _crossing_rows_nb(v, f, xs, ys, zs, cap, i_proto):
                 if not sure:
                     unsure = True
                     break
-                if l_ab != l_bc or l_bc != l_ca:
-                    continue
-                x = ax - ((py - y0) * ky + (pz - z0) * kz)
-                x = min(max(x, xlo), xhi)
-                out_r[n] = rj + k
-                out_i[n] = _first_beyond_nb(xs, inv_hx, x)
-                out_w[n] = -1 if l_ab else 1
-                n += 1
+                inside = (l_ab == l_bc) & (l_bc == l_ca)
+                if inside | short:
+                    x = ax - ((py - y0) * ky + (pz - z0) * kz)
+                    out_x[n] = min(max(x, xlo), xhi)
+                    out_r[n] = rj + k
+                    out_w[n] = -1 if l_ab else 1
+                    n += inside
             if unsure:
                 break
         if unsure:
@@ -794,6 +799,7 @@ def _crossing_rows_nb(v, f, xs, ys, zs, cap, i_proto):
             ne += 1
             continue
         for q in range(first, n):
+            out_i[q] = _first_beyond_nb(xs, inv_hx, out_x[q])
             count[out_r[q] + 1] += 1
     # Counting sort by row; each crossing is inserted in order into its row's bucket.
     for q in range(nj * nk):
