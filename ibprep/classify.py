@@ -1583,6 +1583,24 @@ _PREFETCH_AHEAD = 16
 
 
 @numba.njit(**_JIT)
+def _divmod_nb(a, b, inv_b):
+    """``divmod(a, b)`` for 0 <= a < 2**52, b > 0, ``inv_b = 1.0 / b``: a floating-point guess, corrected once.
+
+    The guess is off by at most one (its relative error is about 1e-16), and
+    integer divisions by a divisor only known at run time are slow.
+    """
+    q = np.int64(a * inv_b)
+    r = a - q * b
+    if r < 0:
+        q -= 1
+        r += b
+    elif r >= b:
+        q += 1
+        r -= b
+    return q, r
+
+
+@numba.njit(**_JIT)
 def _retag_nb(flat_tags, joined, left, partner, plain, nx, ny, nz, set_members):
     """Compiled twin of :func:`_retag`'s updates (same rules, one cell at a time).
 
@@ -1593,6 +1611,8 @@ def _retag_nb(flat_tags, joined, left, partner, plain, nx, ny, nz, set_members):
     ``_PREFETCH_AHEAD`` places on are prefetched (those along k share lines).
     """
     nyz = ny * nz
+    inv_nyz = 1.0 / nyz
+    inv_nz = 1.0 / nz
     if set_members:
         for cell in joined:
             flat_tags[cell] = partner
@@ -1607,10 +1627,8 @@ def _retag_nb(flat_tags, joined, left, partner, plain, nx, ny, nz, set_members):
             _prefetch_nb(flat_tags, ahead - nz)
             _prefetch_nb(flat_tags, ahead + nz)
         cell = joined[q]
-        i = cell // nyz
-        rem = cell - i * nyz
-        j = rem // nz
-        k = rem - j * nz
+        i, rem = _divmod_nb(cell, nyz, inv_nyz)
+        j, k = _divmod_nb(rem, nz, inv_nz)
         if i > 0 and flat_tags[cell - nyz] != partner:
             flat_tags[cell - nyz] = 2
         if i < nx - 1 and flat_tags[cell + nyz] != partner:
@@ -1633,10 +1651,8 @@ def _retag_nb(flat_tags, joined, left, partner, plain, nx, ny, nz, set_members):
             _prefetch_nb(flat_tags, ahead - nz)
             _prefetch_nb(flat_tags, ahead + nz)
         cell = left[q]
-        i = cell // nyz
-        rem = cell - i * nyz
-        j = rem // nz
-        k = rem - j * nz
+        i, rem = _divmod_nb(cell, nyz, inv_nyz)
+        j, k = _divmod_nb(rem, nz, inv_nz)
         _recheck_nb(flat_tags, cell, i, j, k, partner, plain, nx, ny, nz)
 
 

@@ -22,6 +22,7 @@ from ibprep.classify import (
     _crossing_rows,
     _crossing_rows_nb,
     _crossings_numpy,
+    _divmod_nb,
     _i_proto,
     _lattice_range,
     _point_range_nb,
@@ -119,6 +120,16 @@ def test_compiled_crossings_on_a_2d_grid_equal_the_numpy_path():
     ref = _crossings_numpy(v, f, *axes)
     assert ref.i.size > 10
     np.testing.assert_array_equal(_key(_crossings(v, f, *axes)), _key(ref))
+
+
+@pytest.mark.parametrize("b", [1, 3, 410, 160 * 410, 2**20 + 7])
+def test_divmod_from_a_floating_point_guess_equals_divmod(b):
+    rng = np.random.default_rng(b)
+    a = np.concatenate([np.arange(0, 3 * b + 3), [k * b + d for k in (10**6, 2**31 // b, 2**40 // b) for d in (-1, 0, 1)],
+                        rng.integers(0, 2**45, 1000)])
+    a = a[a >= 0]
+    got = np.array([_divmod_nb(int(x), b, 1.0 / b) for x in a]).T
+    np.testing.assert_array_equal(got, np.divmod(a, b))  # oracle: numpy's integer divmod
 
 
 def test_point_range_equals_the_lattice_range():
