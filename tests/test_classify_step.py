@@ -338,6 +338,29 @@ def test_step_bodies_leaving_and_reentering_the_grid(interface):
     assert left_grid
 
 
+@pytest.mark.parametrize("overwrite", [False, True])
+def test_step_chain_through_exact_cases_equals_full_taggings(overwrite):
+    # Vertices on multiples of h / 2 and moves of h / 2: rows through vertices and
+    # along edges at every pose, so the steps merge triangles from the exact numpy
+    # path into the compiled rows. Oracle: full taggings and their set differences.
+    h = 1 / 16
+    grid = Grid(lower=(-1 - h / 2,) * 3, upper=(1 - h / 2,) * 3, spacing=h)
+    axes, shape3 = _axes3(grid), grid.shape
+    base = _snapped(torus_mesh(0.55, 0.25, 24, 12), h)
+    poses = [(base[0] + np.array([0.5, 0.0, -0.5]) * h * n, base[1]) for n in range(5)]
+    prev = classify(poses[0], grid)
+    tr = step_tags(prev.copy(), poses[1], grid, previous_surface=poses[0], overwrite_previous=overwrite)
+    for mesh in poses[2:]:
+        assert _crossing_rows_nb(*mesh, *axes, 0, _i_proto(shape3[0]))[7].size > 0  # the fallback is exercised
+        before = tr.tags.copy()
+        tr = step_tags(tr, mesh, grid, overwrite_previous=overwrite)
+        full = classify(mesh, grid)
+        np.testing.assert_array_equal(tr.tags, full)
+        np.testing.assert_array_equal(tr.fresh, np.flatnonzero(_members(before, "fluid-side") & ~_members(full, "fluid-side")))
+        np.testing.assert_array_equal(tr.covered, np.flatnonzero(_members(full, "fluid-side") & ~_members(before, "fluid-side")))
+        assert tr.fresh.size + tr.covered.size > 0
+
+
 def test_step_2d_chain_equals_full_taggings():
     grid = Grid(lower=(0, 0), upper=(1, 1), spacing=1 / 64)
     th = np.linspace(0, 2 * np.pi, 33)[:-1]
