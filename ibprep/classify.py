@@ -625,12 +625,12 @@ def _group_rows_nb(r, i, w, nrows, i_proto):
         lo = start[q]
         p = fill[q]
         fill[q] = p + 1
-        v = i[c]
-        while p > lo and si[p - 1] > v:
+        val = i[c]
+        while p > lo and si[p - 1] > val:
             si[p] = si[p - 1]
             sw[p] = sw[p - 1]
             p -= 1
-        si[p] = v
+        si[p] = val
         sw[p] = w[c]
     return start, si, sw
 
@@ -664,8 +664,10 @@ def _crossing_rows_nb(v, f, xs, ys, zs, cap, i_proto):
     is kept on the way for the counting sort at the end.
 
     ``v``: (n, 3) vertices, ``f``: (m, 3) faces, both C-contiguous (no transposed
-    copies: a triangle's data are adjacent). Returns ``(j0, k0, nj, nk, start, i, w, exact)``: the :class:`_Rows` fields, and
-    the triangles left to the numpy path (exact arithmetic needed), whose
+    copies: a triangle's data are adjacent).
+
+    Returns ``(j0, k0, nj, nk, start, i, w, exact)``: the :class:`_Rows` fields,
+    and the triangles left to the numpy path (exact arithmetic needed), whose
     crossings are not included.
     """
     m = f.shape[0]
@@ -812,12 +814,12 @@ def _crossing_rows_nb(v, f, xs, ys, zs, cap, i_proto):
         lo = count[q]
         p = fill[q]
         fill[q] = p + 1
-        v = out_i[c]
-        while p > lo and si[p - 1] > v:
+        val = out_i[c]
+        while p > lo and si[p - 1] > val:
             si[p] = si[p - 1]
             sw[p] = sw[p - 1]
             p -= 1
-        si[p] = v
+        si[p] = val
         sw[p] = out_w[c]
     return jb, kb, nj, nk, count, si, sw, exact[:ne]
 
