@@ -68,6 +68,9 @@ from fractions import Fraction
 
 import numba
 import numpy as np
+from llvmlite import ir as _llvm_ir
+from numba.core import types as _nb_types
+from numba.extending import intrinsic as _nb_intrinsic
 
 from .errors import IbprepWarning, InputError
 from .grid import Grid, NestedGrid
@@ -406,6 +409,22 @@ def _range_nb(axis, inv_h, lo, hi):
 
 
 @numba.njit(**_JIT)
+def _point_range_nb(axis, inv_h, y):
+    """``_range_nb(axis, inv_h, y, y)`` with one guess: [first, stop) of the centres equal to y (stop - first is 0 or 1)."""
+    n = axis.size
+    g = (y - axis[0]) * inv_h
+    first = 0 if not g > 0.0 else (n if g >= n else int(g))
+    while first < n and axis[first] < y:
+        first += 1
+    while first > 0 and axis[first - 1] >= y:
+        first -= 1
+    stop = first
+    while stop < n and axis[stop] <= y:
+        stop += 1
+    return first, stop
+
+
+@numba.njit(**_JIT)
 def _first_beyond_nb(xs, inv_h, x):
     """searchsorted(xs, x, side='right') for uniformly spaced sorted xs (guess, then exact comparisons)."""
     n = xs.size
@@ -551,6 +570,280 @@ def _crossings(vertices: np.ndarray, faces: np.ndarray, xs, ys, zs) -> _Crossing
     return _Crossings(i, j, k, w)
 
 
+# --------------------------------------------------------------------------- crossings grouped by row (stepping)
+@dataclass(frozen=True)
+class _Rows:
+    """Crossings grouped by row of centres: the compact form a step keeps and compares.
+
+    The rows ``(j, k)`` of the index box ``j0 <= j < j0 + nj``, ``k0 <= k < k0 + nk``
+    are numbered ``r = (j - j0) * nk + (k - k0)`` (the order of ``j * nz + k``); the
+    crossings of row ``r`` are ``i[start[r]:start[r + 1]]``, ascending, with their
+    signs ``w[start[r]:start[r + 1]]``.
+
+    start : (nj * nk + 1,) int64. i : (c,) int32 (int64 on a grid of 2**31 - 1 or
+    more centres along x). w : (c,) int8, +1 entering, -1 leaving.
+    """
+
+    j0: int
+    k0: int
+    nj: int
+    nk: int
+    start: np.ndarray
+    i: np.ndarray
+    w: np.ndarray
+
+    def expanded(self) -> _Crossings:
+        """The same crossings as a row-sorted :class:`_Crossings` (int64 indices)."""
+        r = np.repeat(np.arange(self.nj * self.nk, dtype=np.int64), np.diff(self.start))
+        j, k = np.divmod(r, max(self.nk, 1))
+        return _Crossings(self.i.astype(np.int64), j + self.j0, k + self.k0, self.w.copy(), row_sorted=True)
+
+
+def _i_proto(nx: int) -> np.ndarray:
+    """Empty array of the dtype that holds a centre index 0..nx along x (int32 unless the grid is huge)."""
+    return np.empty(0, np.int32 if nx < 2**31 - 1 else np.int64)
+
+
+@numba.njit(**_JIT)
+def _group_rows_nb(r, i, w, nrows, i_proto):
+    """Counting sort of crossings by row number ``r`` (0..nrows-1), ascending ``i`` within a row.
+
+    Returns ``(start, si, sw)`` as :class:`_Rows` holds them. Each crossing is
+    inserted in order into its row's bucket (rows hold a handful of crossings).
+    """
+    n = r.size
+    start = np.zeros(nrows + 1, np.int64)
+    for c in range(n):
+        start[r[c] + 1] += 1
+    for q in range(nrows):
+        start[q + 1] += start[q]
+    fill = start[:-1].copy()
+    si = np.empty(n, i_proto.dtype)
+    sw = np.empty(n, np.int8)
+    for c in range(n):
+        q = r[c]
+        lo = start[q]
+        p = fill[q]
+        fill[q] = p + 1
+        val = i[c]
+        while p > lo and si[p - 1] > val:
+            si[p] = si[p - 1]
+            sw[p] = sw[p - 1]
+            p -= 1
+        si[p] = val
+        sw[p] = w[c]
+    return start, si, sw
+
+
+def _row_sorted(cr, shape3) -> _Rows:
+    """Crossings grouped by row (compiled; :func:`_row_sorted_numpy` is the reference order).
+
+    A :class:`_Rows` is returned as is; a :class:`_Crossings` is grouped over the
+    index box of its own rows.
+    """
+    if isinstance(cr, _Rows):
+        return cr
+    nx = shape3[0]
+    if cr.i.size == 0:
+        return _Rows(0, 0, 0, 0, np.zeros(1, np.int64), _i_proto(nx), np.empty(0, np.int8))
+    j0, k0 = int(cr.j.min()), int(cr.k.min())
+    nj, nk = int(cr.j.max()) - j0 + 1, int(cr.k.max()) - k0 + 1
+    r = (cr.j - j0) * nk + (cr.k - k0)
+    start, si, sw = _group_rows_nb(r, cr.i, cr.w, nj * nk, _i_proto(nx))
+    return _Rows(j0, k0, nj, nk, start, si, sw)
+
+
+@numba.njit(**_JIT)
+def _crossing_rows_nb(v, f, xs, ys, zs, cap, i_proto):
+    """:func:`_crossings_nb`'s crossings grouped by row, in one pass over the triangles.
+
+    Same predicates and abscissae, same expressions (bit for bit). The rows are
+    numbered over the index box of all vertices' (y, z) extents, which holds every
+    triangle's lattice range; each triangle is enumerated as soon as it is set up,
+    into buffers of ``cap`` crossings that grow by doubling, and each row's count
+    is kept on the way for the counting sort at the end.
+
+    ``v``: (n, 3) vertices, ``f``: (m, 3) faces, both C-contiguous (no transposed
+    copies: a triangle's data are adjacent).
+
+    Returns ``(j0, k0, nj, nk, start, i, w, exact)``: the :class:`_Rows` fields,
+    and the triangles left to the numpy path (exact arithmetic needed), whose
+    crossings are not included.
+    """
+    m = f.shape[0]
+    inv_hx = 1.0 / (xs[1] - xs[0]) if xs.size > 1 else 1.0
+    inv_hy = 1.0 / (ys[1] - ys[0]) if ys.size > 1 else 1.0
+    inv_hz = 1.0 / (zs[1] - zs[0]) if zs.size > 1 else 1.0
+    # Lattice range of each vertex: a triangle's range [first of its lowest
+    # coordinate, stop of its highest) is the min of its vertices' firsts and the
+    # max of their stops (both are monotone in the coordinate).
+    nv = v.shape[0]
+    vj = np.empty((nv, 2), np.int64)
+    vk = np.empty((nv, 2), np.int64)
+    jb, je, kb, ke = ys.size, 0, zs.size, 0
+    for q in range(nv):
+        j0, j1 = _point_range_nb(ys, inv_hy, v[q, 1])
+        k0, k1 = _point_range_nb(zs, inv_hz, v[q, 2])
+        vj[q, 0], vj[q, 1], vk[q, 0], vk[q, 1] = j0, j1, k0, k1
+        jb, je, kb, ke = min(jb, j0), max(je, j1), min(kb, k0), max(ke, k1)
+    nj = max(je - jb, 0)
+    nk = max(ke - kb, 0)
+    count = np.zeros(nj * nk + 1, np.int64)
+    cap = max(cap, 16)
+    out_r = np.empty(cap, np.int64)
+    out_i = np.empty(cap, i_proto.dtype)
+    out_w = np.empty(cap, np.int8)
+    out_x = np.empty(cap, np.float64)  # crossing abscissae, until their centre index is found
+    exact = np.empty(m, np.int64)
+    ne = 0
+    n = 0
+    for t in range(m):
+        a, b, c = f[t, 0], f[t, 1], f[t, 2]
+        j0 = min(min(vj[a, 0], vj[b, 0]), vj[c, 0])
+        j1 = max(max(vj[a, 1], vj[b, 1]), vj[c, 1])
+        if j1 <= j0:
+            continue
+        k0 = min(min(vk[a, 0], vk[b, 0]), vk[c, 0])
+        k1 = max(max(vk[a, 1], vk[b, 1]), vk[c, 1])
+        if k1 <= k0:
+            continue
+        y0, y1, y2 = v[a, 1], v[b, 1], v[c, 1]
+        z0, z1, z2 = v[a, 2], v[b, 2], v[c, 2]
+        # Zero projected area (exactly) -> never crossed; _orient_sign's cases.
+        dyab = y1 - y0
+        dzab = z1 - z0
+        e2y = y2 - y0
+        e2z = z2 - z0
+        left = dyab * e2z
+        right = dzab * e2y
+        det = left - right
+        if not (abs(det) > _CCW_ERRBOUND * (abs(left) + abs(right))):
+            if (y0 == y1 and z0 == z1) or (y1 == y2 and z1 == z2) or (y2 == y0 and z2 == z0):
+                continue  # two vertices coincide in projection (an edge along x): exactly zero area
+            left0 = dyab == 0.0 or e2z == 0.0
+            right0 = dzab == 0.0 or e2y == 0.0
+            if left0 and right0:
+                continue  # exactly zero area
+            if not (left0 or right0):
+                exact[ne] = t
+                ne += 1
+                continue
+        need = n + (j1 - j0) * (k1 - k0)
+        if need > out_r.size:
+            grown = max(2 * out_r.size, need)
+            r2 = np.empty(grown, np.int64)
+            i2 = np.empty(grown, i_proto.dtype)
+            w2 = np.empty(grown, np.int8)
+            r2[:n] = out_r[:n]
+            i2[:n] = out_i[:n]
+            w2[:n] = out_w[:n]
+            out_r, out_i, out_w = r2, i2, w2
+            out_x = np.empty(grown, np.float64)  # holds only the current triangle's
+        x0, x1, x2 = v[a, 0], v[b, 0], v[c, 0]
+        dybc, dzbc = y2 - y1, z2 - z1
+        dyca, dzca = y0 - y2, z0 - z2
+        e1x = x1 - x0
+        e2x = x2 - x0
+        n_x = dyab * e2z - dzab * e2y
+        n_y = dzab * e2x - e1x * e2z
+        n_z = e1x * e2y - dyab * e2x
+        ky = n_y / n_x
+        kz = n_z / n_x
+        xlo = min(min(x0, x1), x2)
+        xhi = max(max(x0, x1), x2)
+        ax = x0
+        if not (np.isfinite(ky) and np.isfinite(kz)):  # n_x underflowed: the mid abscissa
+            ky = 0.0
+            kz = 0.0
+            ax = 0.5 * (xlo + xhi)
+        first = n
+        # Rows of at most 3 candidates (small triangles): the in/out branch would
+        # mispredict often, so every candidate is written and kept by n += inside.
+        # Longer rows keep the branch (it follows the row's one inside run).
+        short = k1 - k0 <= 3
+        unsure = False
+        for j in range(j0, j1):
+            py = ys[j]
+            rj = (j - jb) * nk - kb
+            for k in range(k0, k1):
+                pz = zs[k]
+                # _side_filtered for the three edges, same expressions.
+                r = (pz - z0) * dyab
+                s = (py - y0) * dzab
+                d = r - s
+                sure = abs(d) > (abs(r) + abs(s)) * _CCW_ERRBOUND
+                l_ab = d > 0
+                r = (pz - z1) * dybc
+                s = (py - y1) * dzbc
+                d = r - s
+                sure = sure and abs(d) > (abs(r) + abs(s)) * _CCW_ERRBOUND
+                l_bc = d > 0
+                r = (pz - z2) * dyca
+                s = (py - y2) * dzca
+                d = r - s
+                sure = sure and abs(d) > (abs(r) + abs(s)) * _CCW_ERRBOUND
+                l_ca = d > 0
+                if not sure:
+                    unsure = True
+                    break
+                inside = (l_ab == l_bc) & (l_bc == l_ca)
+                if inside | short:
+                    x = ax - ((py - y0) * ky + (pz - z0) * kz)
+                    out_x[n] = min(max(x, xlo), xhi)
+                    out_r[n] = rj + k
+                    out_w[n] = -1 if l_ab else 1
+                    n += inside
+            if unsure:
+                break
+        if unsure:
+            n = first  # drop this triangle's crossings: the numpy path redoes it
+            exact[ne] = t
+            ne += 1
+            continue
+        for q in range(first, n):
+            out_i[q] = _first_beyond_nb(xs, inv_hx, out_x[q])
+            count[out_r[q] + 1] += 1
+    # Counting sort by row; each crossing is inserted in order into its row's bucket.
+    for q in range(nj * nk):
+        count[q + 1] += count[q]
+    fill = count[:-1].copy()
+    si = np.empty(n, i_proto.dtype)
+    sw = np.empty(n, np.int8)
+    for c in range(n):
+        q = out_r[c]
+        lo = count[q]
+        p = fill[q]
+        fill[q] = p + 1
+        val = out_i[c]
+        while p > lo and si[p - 1] > val:
+            si[p] = si[p - 1]
+            sw[p] = sw[p - 1]
+            p -= 1
+        si[p] = val
+        sw[p] = out_w[c]
+    return jb, kb, nj, nk, count, si, sw, exact[:ne]
+
+
+def _crossing_rows(vertices: np.ndarray, faces: np.ndarray, xs, ys, zs, cap: int = 0) -> _Rows:
+    """All crossings of the centre rows with the triangles, grouped by row (for stepping).
+
+    Compiled (:func:`_crossing_rows_nb`); the few triangles that need exact
+    arithmetic go through :func:`_crossings_numpy` and are merged in. Equal to
+    ``_row_sorted_numpy(_crossings_numpy(...))`` (``tests/test_classify_step.py``
+    checks it). ``cap``: expected number of crossings (the buffers grow past it).
+    """
+    v = np.ascontiguousarray(vertices, dtype=np.float64)
+    f = np.ascontiguousarray(faces, dtype=np.int64)
+    proto = _i_proto(xs.size)
+    j0, k0, nj, nk, start, i, w, exact = _crossing_rows_nb(v, f, xs, ys, zs, max(int(cap), 2 * f.shape[0]), proto)
+    if exact.size:
+        rest = _crossings_numpy(vertices, faces[exact], xs, ys, zs)
+        # Every triangle's lattice range lies in the box of all vertices.
+        r = np.concatenate([np.repeat(np.arange(nj * nk, dtype=np.int64), np.diff(start)), (rest.j - j0) * nk + (rest.k - k0)])
+        start, i, w = _group_rows_nb(r, np.concatenate([i, rest.i.astype(i.dtype)]), np.concatenate([w, rest.w]), nj * nk, proto)
+    return _Rows(int(j0), int(k0), int(nj), int(nk), start, i, w)
+
+
 # --------------------------------------------------------------------------- dense tagging
 @numba.njit(**_JIT)
 def _solid_box_nb(i, j, k, nx):
@@ -577,7 +870,31 @@ def _solid_box_nb(i, j, k, nx):
     return i_lo, i_hi, j_lo, j_hi + 1, k_lo, k_hi + 1
 
 
-def _solid_box(cr: _Crossings, shape3) -> tuple[slice, slice, slice] | None:
+@numba.njit(**_JIT)
+def _rows_solid_box_nb(j0, k0, nk, start, i, nx):
+    """:func:`_solid_box_nb` for crossings grouped by row (:class:`_Rows` fields)."""
+    big = np.iinfo(np.int64).max
+    i_lo, i_hi, j_lo, j_hi, k_lo, k_hi = big, -1, big, -1, big, -1
+    beyond = False
+    for r in range(start.size - 1):
+        j = j0 + r // nk
+        k = k0 + r % nk
+        for c in range(start[r], start[r + 1]):
+            if i[c] >= nx:
+                beyond = True
+                continue
+            i_lo = min(i_lo, np.int64(i[c]))
+            i_hi = max(i_hi, np.int64(i[c]))
+            j_lo = min(j_lo, j)
+            j_hi = max(j_hi, j)
+            k_lo = min(k_lo, k)
+            k_hi = max(k_hi, k)
+    if beyond and i_hi >= 0:
+        i_hi = nx
+    return i_lo, i_hi, j_lo, j_hi + 1, k_lo, k_hi + 1
+
+
+def _solid_box(cr, shape3) -> tuple[slice, slice, slice] | None:
     """Index box holding every solid centre of the crossings, plus a one-cell margin (None: no crossing in the grid).
 
     The margin holds the interface layer, so every cell a tagging leaves non-fluid
@@ -587,7 +904,10 @@ def _solid_box(cr: _Crossings, shape3) -> tuple[slice, slice, slice] | None:
     # Cells at or beyond the last crossing of their row have winding zero for a
     # closed surface, so the box ends before max(i) -- unless some row leaves the
     # body only past the grid's last centre: then the box runs to the grid's end.
-    i_lo, i_hi, j_lo, j_hi, k_lo, k_hi = _solid_box_nb(cr.i, cr.j, cr.k, nx)
+    if isinstance(cr, _Rows):
+        i_lo, i_hi, j_lo, j_hi, k_lo, k_hi = _rows_solid_box_nb(cr.j0, cr.k0, cr.nk, cr.start, cr.i, nx)
+    else:
+        i_lo, i_hi, j_lo, j_hi, k_lo, k_hi = _solid_box_nb(cr.i, cr.j, cr.k, nx)
     if i_lo > i_hi:
         return None
     return (
@@ -895,9 +1215,10 @@ class Transition:
     covered: np.ndarray
     region: tuple[slice, ...]
     body_outside: bool
-    _crossings: _Crossings | None = field(default=None, repr=False, compare=False)
+    _crossings: _Rows | None = field(default=None, repr=False, compare=False)
     _grid: Grid | None = field(default=None, repr=False, compare=False)
     _interface: str | None = field(default=None, repr=False, compare=False)
+    _axes: tuple | None = field(default=None, repr=False, compare=False)
     _spent: bool = field(default=False, repr=False, compare=False)
 
     def __post_init__(self) -> None:
@@ -968,46 +1289,10 @@ def _changed_runs(new: _Crossings, old: _Crossings, shape3):
 
 
 @numba.njit(**_JIT)
-def _row_sort_nb(i, j, k, w, nz):
-    """Crossings ordered by row ``j * nz + k``, then by ``i``: a counting sort over rows, an insertion sort within."""
-    n = i.size
-    si = np.empty(n, np.int64)
-    sj = np.empty(n, np.int64)
-    sk = np.empty(n, np.int64)
-    sw = np.empty(n, np.int8)
-    if n == 0:
-        return si, sj, sk, sw
-    lo = j[0] * nz + k[0]
-    hi = lo
-    for c in range(n):
-        r = j[c] * nz + k[c]
-        lo = min(lo, r)
-        hi = max(hi, r)
-    start = np.zeros(hi - lo + 2, np.int64)
-    for c in range(n):
-        start[j[c] * nz + k[c] - lo + 1] += 1
-    for r in range(1, start.size):
-        start[r] += start[r - 1]
-    fill = start[:-1].copy()
-    for c in range(n):
-        r = j[c] * nz + k[c] - lo
-        p = fill[r]
-        fill[r] += 1
-        si[p], sj[p], sk[p], sw[p] = i[c], j[c], k[c], w[c]
-    for r in range(start.size - 1):
-        for p in range(start[r] + 1, start[r + 1]):
-            q = p
-            while q > start[r] and si[q - 1] > si[q]:
-                si[q - 1], si[q] = si[q], si[q - 1]
-                sw[q - 1], sw[q] = sw[q], sw[q - 1]
-                q -= 1
-    return si, sj, sk, sw
+def _changed_nb(nj0, nk0, nnj, nnk, ns, ni, nw, oj0, ok0, onj, onk, os_, oi, ow, nx, ny, nz):
+    """Walk two crossing sets grouped by row (:class:`_Rows` fields, new then old); cells whose solid membership differs.
 
-
-@numba.njit(**_JIT)
-def _changed_nb(ni, nj, nk, nw, oi, oj, ok, ow, nx, ny, nz):
-    """Walk two row-sorted crossing sets row by row; cells whose solid membership differs.
-
+    Rows are visited in increasing ``j * nz + k`` over the union of the two boxes.
     Returns ``(fresh, covered, any_solid_new, open_rows_new, box)``: sorted C-order
     flat indices, whether any centre is solid for the new set, the number of rows
     whose new crossings do not sum to zero (as :func:`_warn_if_open` counts them),
@@ -1016,117 +1301,170 @@ def _changed_nb(ni, nj, nk, nw, oi, oj, ok, ow, nx, ny, nz):
     """
     nn, no = ni.size, oi.size
     nyz = ny * nz
-    # Runs of changed cells [start, stop) along a row; each event ends at most one run.
-    run_lo = np.empty(nn + no, np.int64)
-    run_hi = np.empty(nn + no, np.int64)
-    run_row = np.empty(nn + no, np.int64)
-    run_fresh = np.empty(nn + no, np.bool_)
-    runs = 0
+    # An empty box takes no part in the union.
+    if nn == 0:
+        nnj = 0
+    if no == 0:
+        onj = 0
+    jlo = min(nj0 if nnj > 0 else ny, oj0 if onj > 0 else ny)
+    jhi = max(nj0 + nnj if nnj > 0 else 0, oj0 + onj if onj > 0 else 0)
+    klo = min(nk0 if nnj > 0 else nz, ok0 if onj > 0 else nz)
+    khi = max(nk0 + nnk if nnj > 0 else 0, ok0 + onk if onj > 0 else 0)
+    # Runs of changed cells [lo, hi) along a row, fresh (f) and covered (c) apart;
+    # each event ends at most one run. diff_*: +1 at a run's start, -1 at its stop.
+    f_lo = np.empty(nn + no, np.int64)
+    f_hi = np.empty(nn + no, np.int64)
+    f_row = np.empty(nn + no, np.int64)
+    c_lo = np.empty(nn + no, np.int64)
+    c_hi = np.empty(nn + no, np.int64)
+    c_row = np.empty(nn + no, np.int64)
+    diff_f = np.zeros(nx + 1, np.int64)
+    diff_c = np.zeros(nx + 1, np.int64)
+    nf = 0
+    nc = 0
     any_solid = False
     open_rows = 0
-    a = 0
-    b = 0
-    while a < nn or b < no:
-        ra = nj[a] * nz + nk[a] if a < nn else nyz
-        rb = oj[b] * nz + ok[b] if b < no else nyz
-        row = min(ra, rb)
-        a1 = a
-        total = 0
-        while a1 < nn and nj[a1] * nz + nk[a1] == row:
-            total += nw[a1]
-            a1 += 1
-        b1 = b
-        while b1 < no and oj[b1] * nz + ok[b1] == row:
-            b1 += 1
-        open_rows += total != 0
-        same = (a1 - a) == (b1 - b)
-        if same:
-            for c in range(a1 - a):
-                if ni[a + c] != oi[b + c] or nw[a + c] != ow[b + c]:
-                    same = False
-                    break
-        if same and any_solid:
-            a, b = a1, b1
+    # Bounds of the rows holding a run (j, k inclusive).
+    jmin, jmax, kmin, kmax = ny, -1, nz, -1
+    for j in range(jlo, jhi):
+        in_n = nnj > 0 and nj0 <= j < nj0 + nnj
+        in_o = onj > 0 and oj0 <= j < oj0 + onj
+        if not (in_n or in_o):
             continue
-        cn = 0
-        co = 0
-        while a < a1 or b < b1:
-            if b >= b1 or (a < a1 and ni[a] <= oi[b]):
-                p = ni[a]
-                cn += nw[a]
-                a += 1
-            else:
-                p = oi[b]
-                co += ow[b]
-                b += 1
-            q = nx
-            if a < a1:
-                q = min(q, ni[a])
-            if b < b1:
-                q = min(q, oi[b])
-            if q <= p:
+        for k in range(klo, khi):
+            a = a1 = b = b1 = 0
+            if in_n and nk0 <= k < nk0 + nnk:
+                q = (j - nj0) * nnk + (k - nk0)
+                a, a1 = ns[q], ns[q + 1]
+            if in_o and ok0 <= k < ok0 + onk:
+                q = (j - oj0) * onk + (k - ok0)
+                b, b1 = os_[q], os_[q + 1]
+            if a == a1 and b == b1:
                 continue
-            any_solid |= cn != 0
-            if (cn != 0) != (co != 0):
-                run_lo[runs] = p
-                run_hi[runs] = q
-                run_row[runs] = row
-                run_fresh[runs] = co != 0
-                runs += 1
+            row = j * nz + k
+            nf0, nc0 = nf, nc
+            if a1 - a == 2 and b1 - b == 2 and nw[a] + nw[a + 1] == 0 and ow[b] + ow[b + 1] == 0:
+                # The common row: one solid interval [p0, p1) now, [q0, q1) before
+                # (a closed row crossing twice; i <= nx).
+                p0, p1 = np.int64(ni[a]), np.int64(ni[a + 1])
+                q0, q1 = np.int64(oi[b]), np.int64(oi[b + 1])
+                any_solid |= p1 > p0
+                if p0 == q0 and p1 == q1:
+                    continue
+                # covered = [p0, p1) minus [q0, q1); fresh = [q0, q1) minus [p0, p1).
+                hi = min(p1, q0)
+                if hi > p0:
+                    c_lo[nc], c_hi[nc], c_row[nc] = p0, hi, row
+                    nc += 1
+                lo = max(p0, q1)
+                if p1 > lo:
+                    c_lo[nc], c_hi[nc], c_row[nc] = lo, p1, row
+                    nc += 1
+                hi = min(q1, p0)
+                if hi > q0:
+                    f_lo[nf], f_hi[nf], f_row[nf] = q0, hi, row
+                    nf += 1
+                lo = max(q0, p1)
+                if q1 > lo:
+                    f_lo[nf], f_hi[nf], f_row[nf] = lo, q1, row
+                    nf += 1
+            else:
+                total = 0
+                for c in range(a, a1):
+                    total += nw[c]
+                open_rows += total != 0
+                same = (a1 - a) == (b1 - b)
+                if same:
+                    for c in range(a1 - a):
+                        if ni[a + c] != oi[b + c] or nw[a + c] != ow[b + c]:
+                            same = False
+                            break
+                if same and any_solid:
+                    continue
+                cn = 0
+                co = 0
+                while a < a1 or b < b1:
+                    if b >= b1 or (a < a1 and ni[a] <= oi[b]):
+                        p = np.int64(ni[a])
+                        cn += nw[a]
+                        a += 1
+                    else:
+                        p = np.int64(oi[b])
+                        co += ow[b]
+                        b += 1
+                    q = np.int64(nx)
+                    if a < a1:
+                        q = min(q, np.int64(ni[a]))
+                    if b < b1:
+                        q = min(q, np.int64(oi[b]))
+                    if q <= p:
+                        continue
+                    any_solid |= cn != 0
+                    if cn != 0 and co == 0:
+                        c_lo[nc], c_hi[nc], c_row[nc] = p, q, row
+                        nc += 1
+                    elif co != 0 and cn == 0:
+                        f_lo[nf], f_hi[nf], f_row[nf] = p, q, row
+                        nf += 1
+            if nf > nf0 or nc > nc0:
+                jmin, jmax = min(jmin, j), max(jmax, j)
+                kmin, kmax = min(kmin, k), max(kmax, k)
     # Counting sort by the cell's position along the row (the slowest C-order
     # index): rows are visited in increasing order, so each bucket fills sorted
-    # and the output is in C order without a comparison sort.
-    start_f = np.zeros(nx + 1, np.int64)
-    start_c = np.zeros(nx + 1, np.int64)
-    for r in range(runs):
-        start = start_f if run_fresh[r] else start_c
-        for c in range(run_lo[r], run_hi[r]):
-            start[c + 1] += 1
-    for c in range(nx):
-        start_f[c + 1] += start_f[c]
-        start_c[c + 1] += start_c[c]
-    fresh = np.empty(start_f[nx], np.int64)
-    covered = np.empty(start_c[nx], np.int64)
-    # box: index bounds of the changed cells (inclusive), j and k from the row.
-    box = np.array([nx, -1, ny, -1, nz, -1], np.int64)
-    for r in range(runs):
-        row = run_row[r]
-        j = row // nz
-        k = row - j * nz
-        box[0] = min(box[0], run_lo[r])
-        box[1] = max(box[1], run_hi[r] - 1)
-        box[2] = min(box[2], j)
-        box[3] = max(box[3], j)
-        box[4] = min(box[4], k)
-        box[5] = max(box[5], k)
-        if run_fresh[r]:
-            for c in range(run_lo[r], run_hi[r]):
-                fresh[start_f[c]] = c * nyz + row
-                start_f[c] += 1
-        else:
-            for c in range(run_lo[r], run_hi[r]):
-                covered[start_c[c]] = c * nyz + row
-                start_c[c] += 1
+    # and the output is in C order without a comparison sort. Bucket sizes come
+    # from the runs' ends (a difference array), not cell by cell.
+    ilo, ihi = nx, -1
+    for r in range(nf):
+        diff_f[f_lo[r]] += 1
+        diff_f[f_hi[r]] -= 1
+        ilo, ihi = min(ilo, f_lo[r]), max(ihi, f_hi[r] - 1)
+    for r in range(nc):
+        diff_c[c_lo[r]] += 1
+        diff_c[c_hi[r]] -= 1
+        ilo, ihi = min(ilo, c_lo[r]), max(ihi, c_hi[r] - 1)
+    # diff -> bucket starts: running count of open runs = cells at c; their prefix sum.
+    open_f = 0
+    open_c = 0
+    sum_f = 0
+    sum_c = 0
+    for c in range(nx + 1):
+        open_f += diff_f[c]
+        open_c += diff_c[c]
+        diff_f[c] = sum_f
+        diff_c[c] = sum_c
+        sum_f += open_f
+        sum_c += open_c
+    fresh = np.empty(sum_f, np.int64)
+    covered = np.empty(sum_c, np.int64)
+    for r in range(nf):
+        row = f_row[r]
+        for c in range(f_lo[r], f_hi[r]):
+            fresh[diff_f[c]] = c * nyz + row
+            diff_f[c] += 1
+    for r in range(nc):
+        row = c_row[r]
+        for c in range(c_lo[r], c_hi[r]):
+            covered[diff_c[c]] = c * nyz + row
+            diff_c[c] += 1
+    box = np.array([ilo, ihi, jmin, jmax, kmin, kmax], np.int64)
+    if ihi < 0:
+        box[:] = np.array([nx, -1, ny, -1, nz, -1], np.int64)
     return fresh, covered, any_solid, open_rows, box
 
 
-def _row_sorted(cr: _Crossings, shape3) -> _Crossings:
-    """The crossings ordered by row, then by position along the row."""
-    if cr.row_sorted:
-        return cr
-    return _Crossings(*_row_sort_nb(cr.i, cr.j, cr.k, cr.w, shape3[2]), row_sorted=True)
-
-
-def _changed_cells(new: _Crossings, old: _Crossings, shape3, with_box: bool = False):
+def _changed_cells(new, old, shape3, with_box: bool = False):
     """Cells whose solid membership differs between two crossing sets (compiled twin of :func:`_changed_runs`).
 
-    Returns ``(fresh_flat, covered_flat, any_solid_now)`` as :func:`_changed_runs`
-    does, and the number of rows crossing ``new`` unevenly (see :func:`_warn_if_open`);
-    with ``with_box``, also the inclusive index bounds of the changed cells.
+    ``new``, ``old``: :class:`_Crossings` or :class:`_Rows`. Returns
+    ``(fresh_flat, covered_flat, any_solid_now)`` as :func:`_changed_runs` does, and
+    the number of rows crossing ``new`` unevenly (see :func:`_warn_if_open`); with
+    ``with_box``, also the inclusive index bounds of the changed cells.
     """
     nx, ny, nz = shape3
-    new, old = _row_sorted(new, shape3), _row_sorted(old, shape3)
-    fresh, covered, any_solid, open_rows, box = _changed_nb(new.i, new.j, new.k, new.w, old.i, old.j, old.k, old.w, nx, ny, nz)
+    n, o = _row_sorted(new, shape3), _row_sorted(old, shape3)
+    fresh, covered, any_solid, open_rows, box = _changed_nb(
+        n.j0, n.k0, n.nj, n.nk, n.start, n.i, n.w, o.j0, o.k0, o.nj, o.nk, o.start, o.i, o.w, nx, ny, nz
+    )
     if with_box:
         return fresh, covered, bool(any_solid), int(open_rows), box
     return fresh, covered, bool(any_solid), int(open_rows)
@@ -1220,18 +1558,79 @@ def _recheck_nb(flat_tags, cell, i, j, k, partner, plain, nx, ny, nz):
         _set_interface_nb(flat_tags, cell + 1, i, j, k + 1, partner, plain, nx, ny, nz)
 
 
+@_nb_intrinsic
+def _prefetch_nb(typingctx, arr, idx):
+    """Hint the cache line holding ``arr[idx]`` in, for writing (LLVM's prefetch; never faults, so no bounds check)."""
+    if not isinstance(arr, _nb_types.Array) or not isinstance(idx, _nb_types.Integer):
+        return None
+
+    def codegen(context, builder, signature, args):
+        aryty, idxty = signature.args
+        data = context.make_array(aryty)(context, builder, args[0]).data
+        ptr = builder.gep(data, [context.cast(builder, args[1], idxty, _nb_types.intp)])
+        i8p = builder.bitcast(ptr, _llvm_ir.IntType(8).as_pointer())
+        i32 = _llvm_ir.IntType(32)
+        fnty = _llvm_ir.FunctionType(_llvm_ir.VoidType(), [i8p.type, i32, i32, i32])
+        fn = builder.module.declare_intrinsic("llvm.prefetch", [i8p.type], fnty)
+        builder.call(fn, [i8p, i32(1), i32(3), i32(1)])  # write, keep in all levels, data
+        return context.get_dummy_value()
+
+    return _nb_types.void(arr, idx), codegen
+
+
+# Cells ahead whose neighbours' cache lines the retag kernel asks for: the cells
+# are sparse in a large array, so each neighbour is a miss, and prefetching lets
+# many misses be in flight at once.
+_PREFETCH_AHEAD = 16
+
+
 @numba.njit(**_JIT)
-def _retag_nb(flat_tags, joined, left, partner, plain, nx, ny, nz):
+def _divmod_nb(a, b, inv_b):
+    """``divmod(a, b)`` for 0 <= a < 2**52, b > 0, ``inv_b = 1.0 / b``: a floating-point guess, corrected once.
+
+    The guess is off by at most one (its relative error is about 1e-16), and
+    integer divisions by a divisor only known at run time are slow.
+    """
+    q = np.int64(a * inv_b)
+    r = a - q * b
+    if r < 0:
+        q -= 1
+        r += b
+    elif r >= b:
+        q += 1
+        r -= b
+    return q, r
+
+
+@numba.njit(**_JIT)
+def _retag_nb(flat_tags, joined, left, partner, plain, nx, ny, nz, set_members):
     """Compiled twin of :func:`_retag`'s updates (same rules, one cell at a time).
 
-    Each cell's (i, j, k) is found once; its neighbours' follow by offsets.
+    Each cell's (i, j, k) is found once; its neighbours' follow by offsets. With
+    ``set_members``, first give the ``joined`` cells the partner code and the
+    ``left`` cells the plain one (what :func:`_retag` expects done already). The
+    cache lines of the face neighbours along i and j of the cell
+    ``_PREFETCH_AHEAD`` places on are prefetched (those along k share lines).
     """
     nyz = ny * nz
-    for cell in joined:
-        i = cell // nyz
-        rem = cell - i * nyz
-        j = rem // nz
-        k = rem - j * nz
+    inv_nyz = 1.0 / nyz
+    inv_nz = 1.0 / nz
+    if set_members:
+        for cell in joined:
+            flat_tags[cell] = partner
+        for cell in left:
+            flat_tags[cell] = plain
+    nj = joined.size
+    for q in range(nj):
+        if q + _PREFETCH_AHEAD < nj:
+            ahead = joined[q + _PREFETCH_AHEAD]
+            _prefetch_nb(flat_tags, ahead - nyz)
+            _prefetch_nb(flat_tags, ahead + nyz)
+            _prefetch_nb(flat_tags, ahead - nz)
+            _prefetch_nb(flat_tags, ahead + nz)
+        cell = joined[q]
+        i, rem = _divmod_nb(cell, nyz, inv_nyz)
+        j, k = _divmod_nb(rem, nz, inv_nz)
         if i > 0 and flat_tags[cell - nyz] != partner:
             flat_tags[cell - nyz] = 2
         if i < nx - 1 and flat_tags[cell + nyz] != partner:
@@ -1244,28 +1643,37 @@ def _retag_nb(flat_tags, joined, left, partner, plain, nx, ny, nz):
             flat_tags[cell - 1] = 2
         if k < nz - 1 and flat_tags[cell + 1] != partner:
             flat_tags[cell + 1] = 2
-    for cell in left:
-        i = cell // nyz
-        rem = cell - i * nyz
-        j = rem // nz
-        k = rem - j * nz
+    nl = left.size
+    for q in range(nl):
+        if q + _PREFETCH_AHEAD < nl:
+            ahead = left[q + _PREFETCH_AHEAD]
+            _prefetch_nb(flat_tags, ahead)
+            _prefetch_nb(flat_tags, ahead - nyz)
+            _prefetch_nb(flat_tags, ahead + nyz)
+            _prefetch_nb(flat_tags, ahead - nz)
+            _prefetch_nb(flat_tags, ahead + nz)
+        cell = left[q]
+        i, rem = _divmod_nb(cell, nyz, inv_nyz)
+        j, k = _divmod_nb(rem, nz, inv_nz)
         _recheck_nb(flat_tags, cell, i, j, k, partner, plain, nx, ny, nz)
 
 
 def _retag_compiled(
-    flat_tags: np.ndarray, fresh: np.ndarray, covered: np.ndarray, shape3, interface: str, box=None
+    flat_tags: np.ndarray, fresh: np.ndarray, covered: np.ndarray, shape3, interface: str, box=None, set_members=False
 ) -> tuple[slice, ...]:
     """:func:`_retag` (same arguments, same updates in place, same returned box) on the compiled kernel.
 
     ``box``: the inclusive index bounds of the changed cells when the caller has
     them (as :func:`_changed_nb` returns them); found from the cells otherwise.
+    ``set_members``: ``flat_tags`` does not yet hold SOLID at ``covered`` and FLUID
+    at ``fresh``; the kernel sets them first.
     """
     if interface == "fluid-side":
         joined, left, partner, plain = covered, fresh, CellTag.SOLID, CellTag.FLUID
     else:
         joined, left, partner, plain = fresh, covered, CellTag.FLUID, CellTag.SOLID
     nx, ny, nz = shape3
-    _retag_nb(flat_tags, joined, left, np.uint8(partner), np.uint8(plain), nx, ny, nz)
+    _retag_nb(flat_tags, joined, left, np.uint8(partner), np.uint8(plain), nx, ny, nz, set_members)
     if box is None:
         ends = [a[[0, -1]] for a in (fresh, covered) if a.size]  # sorted: first and last cell only bound i
         rem = np.concatenate([fresh, covered]) % (ny * nz)
@@ -1349,7 +1757,7 @@ def step_tags(
     interface = _check_interface(interface)
     grid = _check_grid(grid)
     shape3 = grid.shape if grid.ndim == 3 else (*grid.shape, 1)
-    axes = _axes3(grid)
+    axes = None
     if isinstance(previous, Transition) and previous._spent:
         raise InputError(
             "this Transition's tags were overwritten by step_tags(..., overwrite_previous=True); "
@@ -1363,6 +1771,7 @@ def step_tags(
             )
         prev = previous.tags
         old = previous._crossings
+        axes = previous._axes if previous._axes is not None else _axes3(grid)
     else:
         prev = previous.tags if isinstance(previous, Transition) else previous
         if not overwrite_previous:
@@ -1376,6 +1785,7 @@ def step_tags(
         if previous_surface is None:
             raise InputError("previous_surface is required when previous is a tag array; pass the body at the previous pose")
         v_old, f_old = as_triangles(previous_surface)
+        axes = _axes3(grid)
         old = _crossings(v_old, f_old, *axes)
     if overwrite_previous and not (prev.flags.writeable and prev.flags.c_contiguous):
         raise InputError(
@@ -1383,7 +1793,7 @@ def step_tags(
             "pass a copy (np.ascontiguousarray) or leave overwrite_previous False"
         )
     v_now, f_now = as_triangles(surface_now)
-    new = _row_sorted(_crossings(v_now, f_now, *axes), shape3)  # kept sorted for the next step
+    new = _crossing_rows(v_now, f_now, *axes, cap=old.i.size + old.i.size // 4)  # kept for the next step
     fresh, covered, any_solid, open_rows, changed_box = _changed_cells(new, old, shape3, with_box=True)
     _warn_open_rows(open_rows)
     if overwrite_previous:
@@ -1401,10 +1811,9 @@ def step_tags(
         if box is not None:
             tags[box] = prev.reshape(shape3)[box]
     flat_tags = tags.reshape(-1)
-    flat_tags[covered] = CellTag.SOLID
-    flat_tags[fresh] = CellTag.FLUID
     if fresh.size or covered.size:
-        region3 = _retag_compiled(flat_tags, fresh, covered, shape3, interface, changed_box)
+        # Sets SOLID at covered, FLUID at fresh, then the interface layer around them.
+        region3 = _retag_compiled(flat_tags, fresh, covered, shape3, interface, changed_box, set_members=True)
     else:
         region3 = (slice(0, 0),) * 3
     outside = not any_solid
@@ -1419,4 +1828,5 @@ def step_tags(
         _crossings=new,
         _grid=grid,
         _interface=interface,
+        _axes=axes,
     )

@@ -19,9 +19,16 @@ from ibprep.classify import (
     _Crossings,
     _crossings,
     _crossings_nb,
+    _crossing_rows,
+    _crossing_rows_nb,
     _crossings_numpy,
+    _divmod_nb,
+    _i_proto,
+    _lattice_range,
+    _point_range_nb,
     _row_sorted,
     _row_sorted_numpy,
+    _solid_box,
     classify,
     step_tags,
 )
@@ -115,6 +122,115 @@ def test_compiled_crossings_on_a_2d_grid_equal_the_numpy_path():
     np.testing.assert_array_equal(_key(_crossings(v, f, *axes)), _key(ref))
 
 
+@pytest.mark.parametrize("b", [1, 3, 410, 160 * 410, 2**20 + 7])
+def test_divmod_from_a_floating_point_guess_equals_divmod(b):
+    rng = np.random.default_rng(b)
+    a = np.concatenate([np.arange(0, 3 * b + 3), [k * b + d for k in (10**6, 2**31 // b, 2**40 // b) for d in (-1, 0, 1)],
+                        rng.integers(0, 2**45, 1000)])
+    a = a[a >= 0]
+    got = np.array([_divmod_nb(int(x), b, 1.0 / b) for x in a]).T
+    np.testing.assert_array_equal(got, np.divmod(a, b))  # oracle: numpy's integer divmod
+
+
+def test_point_range_equals_the_lattice_range():
+    # A vertex's lattice range [first, stop): the centres lying exactly at y.
+    for axis in _axes3(GRID)[1:]:
+        h = axis[1] - axis[0]
+        y = np.concatenate([axis, np.nextafter(axis, -np.inf), np.nextafter(axis, np.inf), axis + h / 2, [axis[0] - 3, axis[-1] + 3]])
+        got = np.array([_point_range_nb(axis, 1.0 / h, v) for v in y]).T
+        # Oracles: the numpy reference path (_lattice_range) and numpy's searchsorted.
+        np.testing.assert_array_equal(got, np.array(_lattice_range(axis, y, y)))
+        np.testing.assert_array_equal(got, [np.searchsorted(axis, y, "left"), np.searchsorted(axis, y, "right")])
+        assert np.count_nonzero(got[1] - got[0]) == axis.size  # the centres themselves
+
+
+def _assert_rows_equal(rows, ref, nz):
+    """A _Rows equals row-sorted _Crossings: same row and position sequence, same crossings."""
+    got = rows.expanded()
+    assert np.all(np.diff(rows.start) >= 0) and rows.start[-1] == rows.i.size
+    np.testing.assert_array_equal(np.stack([got.j * nz + got.k, got.i]), np.stack([ref.j * nz + ref.k, ref.i]))
+    np.testing.assert_array_equal(_key(got), _key(ref))
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+@pytest.mark.parametrize("name", ["sphere", "torus", "wing"])
+def test_crossings_grouped_by_row_equal_the_numpy_path(name, seed):
+    axes, shape3 = _axes3(GRID), GRID.shape
+    mesh = _mesh(name, seed)
+    # Oracle: the numpy reference path (_crossings_numpy), ordered by _row_sorted_numpy.
+    ref = _row_sorted_numpy(_crossings_numpy(*mesh, *axes), shape3)
+    assert ref.i.size > 100
+    rows = _crossing_rows(*mesh, *axes)
+    _assert_rows_equal(rows, ref, shape3[2])
+    # The box of the solid centres, from the rows and from the numpy crossings.
+    assert _solid_box(rows, shape3) == _solid_box(ref, shape3)
+    # Buffers that must grow many times (capacity 1) give the same rows.
+    small = _crossing_rows_nb(*mesh, *axes, 1, _i_proto(shape3[0]))
+    np.testing.assert_array_equal(small[4], rows.start)
+    np.testing.assert_array_equal(small[5], rows.i)
+    np.testing.assert_array_equal(small[6], rows.w)
+
+
+@pytest.mark.parametrize("name", ["sphere", "torus", "box"])
+def test_crossings_grouped_by_row_merge_the_exact_cases(name):
+    # As test_compiled_crossings_hand_exact_cases_to_the_numpy_path: the triangles
+    # needing exact arithmetic are merged into the rows from the numpy path.
+    h = 1 / 16
+    grid = Grid(lower=(-1 - h / 2,) * 3, upper=(1 - h / 2,) * 3, spacing=h)
+    axes, shape3 = _axes3(grid), grid.shape
+    if name == "box":
+        mesh = box_mesh((-0.5, -0.5, -0.5), (0.5, 0.25, 0.375))
+    else:
+        mesh = _snapped(sphere_mesh(0.8, 2) if name == "sphere" else torus_mesh(0.55, 0.25, 24, 12), h)
+    assert _crossing_rows_nb(*mesh, *axes, 0, _i_proto(shape3[0]))[7].size > 0
+    # Oracle: the numpy reference path.
+    ref = _row_sorted_numpy(_crossings_numpy(*mesh, *axes), shape3)
+    rows = _crossing_rows(*mesh, *axes)
+    _assert_rows_equal(rows, ref, shape3[2])
+    assert _solid_box(rows, shape3) == _solid_box(ref, shape3)
+
+
+def test_crossings_grouped_by_row_on_a_2d_grid_and_off_the_grid():
+    grid = Grid(lower=(0, 0), upper=(1, 1), spacing=1 / 50)
+    th = np.linspace(0, 2 * np.pi, 41)[:-1]
+    loop = np.column_stack([0.5 + 0.3 * np.cos(th), 0.45 + 0.2 * np.sin(th)])
+    from ibprep.triangles import as_triangles
+
+    v, f = as_triangles(loop)
+    axes, shape3 = _axes3(grid), (*grid.shape, 1)
+    ref = _row_sorted_numpy(_crossings_numpy(v, f, *axes), shape3)  # oracle: the numpy reference path
+    assert ref.i.size > 10
+    _assert_rows_equal(_crossing_rows(v, f, *axes), ref, 1)
+    far = _crossing_rows(v + [0.0, 5.0, 0.0], f, *axes)  # wholly outside the grid along y: no rows
+    assert far.i.size == 0 and _solid_box(far, shape3) is None
+
+
+@pytest.mark.parametrize("name", ["torus", "wing"])
+def test_changed_cells_of_grouped_rows_equal_the_numpy_path(name):
+    axes, shape3 = _axes3(GRID), GRID.shape
+    a = _mesh(name, 2)
+    b = (a[0] + [0.02, -0.015, 0.03], a[1])
+    got = _changed_cells(_crossing_rows(*b, *axes), _crossing_rows(*a, *axes), shape3, with_box=True)
+    # Oracle: the numpy reference path (_changed_runs on _crossings_numpy).
+    ref = _changed_runs(_crossings_numpy(*b, *axes), _crossings_numpy(*a, *axes), shape3)
+    assert ref[0].size and ref[1].size
+    np.testing.assert_array_equal(got[0], ref[0])
+    np.testing.assert_array_equal(got[1], ref[1])
+    assert got[2] == ref[2] and got[3] == 0
+    # Against the body moved far along y (boxes overlapping only in part), and against no crossings at all.
+    far = (a[0] + [0.0, 0.9, 0.0], a[1])
+    for new, old in ((a, far), (far, a)):
+        got = _changed_cells(_crossing_rows(*new, *axes), _crossing_rows(*old, *axes), shape3)
+        ref = _changed_runs(_crossings_numpy(*new, *axes), _crossings_numpy(*old, *axes), shape3)
+        np.testing.assert_array_equal(got[0], ref[0])
+        np.testing.assert_array_equal(got[1], ref[1])
+    empty = _row_sorted(_Crossings(*(np.empty(0, np.int64) for _ in range(3)), np.empty(0, np.int8)), shape3)
+    got = _changed_cells(empty, _crossing_rows(*a, *axes), shape3)
+    ref = _changed_runs(_crossings_numpy(a[0] + 9.0, a[1], *axes), _crossings_numpy(*a, *axes), shape3)
+    np.testing.assert_array_equal(got[0], ref[0])
+    assert got[1].size == 0 and not got[2]
+
+
 def _random_crossings(rng, shape3, n):
     """Arbitrary crossing sets, rows left open and crossings at the grid's end included."""
     nx, ny, nz = shape3
@@ -128,7 +244,7 @@ def test_row_sort_and_changed_cells_equal_the_numpy_paths(seed):
     rng = np.random.default_rng(seed)
     shape3 = (9, 5, 4) if seed % 2 else (30, 3, 1)
     new, old = _random_crossings(rng, shape3, 60), _random_crossings(rng, shape3, 50)
-    s, r = _row_sorted(new, shape3), _row_sorted_numpy(new, shape3)
+    s, r = _row_sorted(new, shape3).expanded(), _row_sorted_numpy(new, shape3)
     nz = shape3[2]
     np.testing.assert_array_equal(np.stack([s.j * nz + s.k, s.i]), np.stack([r.j * nz + r.k, r.i]))
     np.testing.assert_array_equal(_key(s), _key(r))
@@ -222,6 +338,29 @@ def test_step_bodies_leaving_and_reentering_the_grid(interface):
     assert left_grid
 
 
+@pytest.mark.parametrize("overwrite", [False, True])
+def test_step_chain_through_exact_cases_equals_full_taggings(overwrite):
+    # Vertices on multiples of h / 2 and moves of h / 2: rows through vertices and
+    # along edges at every pose, so the steps merge triangles from the exact numpy
+    # path into the compiled rows. Oracle: full taggings and their set differences.
+    h = 1 / 16
+    grid = Grid(lower=(-1 - h / 2,) * 3, upper=(1 - h / 2,) * 3, spacing=h)
+    axes, shape3 = _axes3(grid), grid.shape
+    base = _snapped(torus_mesh(0.55, 0.25, 24, 12), h)
+    poses = [(base[0] + np.array([0.5, 0.0, -0.5]) * h * n, base[1]) for n in range(5)]
+    prev = classify(poses[0], grid)
+    tr = step_tags(prev.copy(), poses[1], grid, previous_surface=poses[0], overwrite_previous=overwrite)
+    for mesh in poses[2:]:
+        assert _crossing_rows_nb(*mesh, *axes, 0, _i_proto(shape3[0]))[7].size > 0  # the fallback is exercised
+        before = tr.tags.copy()
+        tr = step_tags(tr, mesh, grid, overwrite_previous=overwrite)
+        full = classify(mesh, grid)
+        np.testing.assert_array_equal(tr.tags, full)
+        np.testing.assert_array_equal(tr.fresh, np.flatnonzero(_members(before, "fluid-side") & ~_members(full, "fluid-side")))
+        np.testing.assert_array_equal(tr.covered, np.flatnonzero(_members(full, "fluid-side") & ~_members(before, "fluid-side")))
+        assert tr.fresh.size + tr.covered.size > 0
+
+
 def test_step_2d_chain_equals_full_taggings():
     grid = Grid(lower=(0, 0), upper=(1, 1), spacing=1 / 64)
     th = np.linspace(0, 2 * np.pi, 33)[:-1]
@@ -291,3 +430,9 @@ def test_compiled_retag_equals_the_numpy_path(interface):
     np.testing.assert_array_equal(again, ref)
     np.testing.assert_array_equal(got, ref)
     np.testing.assert_array_equal(got.reshape(shape3), classify(b, grid, interface=interface))
+    # The kernel setting the members itself, from the tags of the previous pose.
+    # Oracle: the numpy reference path (_retag, members set beforehand).
+    unset = classify(a, grid, interface=interface).reshape(-1)
+    assert not np.array_equal(unset, start)
+    assert _retag_compiled(unset, fresh, covered, shape3, interface, box, set_members=True) == region
+    np.testing.assert_array_equal(unset, ref)
