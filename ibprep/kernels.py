@@ -26,8 +26,9 @@ which agrees with the QR solve to round-off too.
 All are compiled with ``fastmath`` off (no re-association, no fused
 multiply-add), numpy's floating-point error model (a division by zero gives
 inf/NaN, as in numpy), single-threaded and releasing the GIL. The first call in
-a fresh environment compiles them (the demo's first run takes about half a
-minute longer than the next ones on the reference machine); numba caches the
+a fresh environment compiles them (with the classifier's kernels, the demo's first
+run takes about forty seconds longer than the next ones on the reference machine:
+57 s against 13-15 s); numba caches the
 machine code on disk (``__pycache__``), after which loading takes a few
 hundredths of a second.
 """
