@@ -929,7 +929,7 @@ def _boundary_point(i, ox, oy, oz, reach, m, l_face, l_cc, l_box, tri, qb, grid_
 # stencils of the tapered-wing benchmark). For a fit centred on its own cell
 # (the direct method) the weighted neighbour rows A_n depend on the set alone,
 # so their Gram matrix G_n = A_n^T A_n is factorised once per set, as
-# G_n = Q diag(lam) Q^T (cyclic Jacobi), and each stencil adds its boundary row
+# G_n = Q diag(lam) Q^T (_eigh_small), and each stencil adds its boundary row
 # a_b as a rank-one update G = G_n + a_b a_b^T:
 #   * the extreme eigenvalues of G from the secular equation
 #     1 + sum_i z_i^2 / (lam_i - mu) = 0, z = Q^T a_b (Golub 1973, "Some modified
@@ -943,82 +943,121 @@ def _boundary_point(i, ox, oy, oz, reach, m, l_face, l_cc, l_box, tri, qb, grid_
 # largest weight (tests/test_kernels.py). Any other stencil, and the image-point
 # method, take the QR solve.
 _SET_COND_MAX = 50.0
-_JACOBI_SWEEPS = 50
 
 
 @numba.njit(**_JIT)
-def _jacobi_rotate(a, i, j, k, l, s, tau):
-    g = a[i, j]
-    hh = a[k, l]
-    a[i, j] = g - s * (hh + g * tau)
-    a[k, l] = hh + s * (g - hh * tau)
+def _eigh_small(G, m, Z, lam, v, p_, e):
+    """Eigenvalues (ascending, in lam) and orthonormal eigenvectors (columns of Z) of the
+    symmetric (m, m) G (destroyed). Returns False if the QL iteration did not converge.
 
-
-@numba.njit(**_JIT)
-def _jacobi_eigh(a, m, vecs, lam, bw, zw):
-    """Eigenvalues (ascending, in lam) and eigenvectors (columns of vecs) of the symmetric
-    (m, m) a (its upper triangle is destroyed) by the cyclic Jacobi method with
-    thresholds (Rutishauser 1971; Press et al., Numerical Recipes, 3rd ed. 2007,
-    §11.1). Returns False if it did not converge."""
+    Householder reduction to tridiagonal form with the reflectors accumulated
+    (Golub & Van Loan, Matrix Computations, §8.3.1), then the implicit QL algorithm
+    with the rotations applied to them (Press et al., Numerical Recipes, 3rd ed.
+    2007, §11.3-11.4, routines tred2 / tqli): G = Z diag(lam) Z^T.
+    """
     for i in range(m):
         for j in range(m):
-            vecs[i, j] = 1.0 if i == j else 0.0
-        bw[i] = a[i, i]
-        lam[i] = a[i, i]
-        zw[i] = 0.0
-    done = False
-    for sweep in range(_JACOBI_SWEEPS):
-        sm = 0.0
-        for p in range(m - 1):
-            for q in range(p + 1, m):
-                sm += abs(a[p, q])
-        if sm == 0.0:
-            done = True
-            break
-        tresh = 0.2 * sm / (m * m) if sweep < 3 else 0.0
-        for p in range(m - 1):
-            for q in range(p + 1, m):
-                g = 100.0 * abs(a[p, q])
-                if sweep > 3 and abs(lam[p]) + g == abs(lam[p]) and abs(lam[q]) + g == abs(lam[q]):
-                    a[p, q] = 0.0
-                elif abs(a[p, q]) > tresh:
-                    hh = lam[q] - lam[p]
-                    if abs(hh) + g == abs(hh):
-                        t = a[p, q] / hh
-                    else:
-                        theta = 0.5 * hh / a[p, q]
-                        t = 1.0 / (abs(theta) + math.sqrt(1.0 + theta * theta))
-                        if theta < 0.0:
-                            t = -t
-                    c = 1.0 / math.sqrt(1.0 + t * t)
-                    sn = t * c
-                    tau = sn / (1.0 + c)
-                    hv = t * a[p, q]
-                    zw[p] -= hv
-                    zw[q] += hv
-                    lam[p] -= hv
-                    lam[q] += hv
-                    a[p, q] = 0.0
-                    for j in range(p):
-                        _jacobi_rotate(a, j, p, j, q, sn, tau)
-                    for j in range(p + 1, q):
-                        _jacobi_rotate(a, p, j, j, q, sn, tau)
-                    for j in range(q + 1, m):
-                        _jacobi_rotate(a, p, j, q, j, sn, tau)
-                    for j in range(m):
-                        _jacobi_rotate(vecs, j, p, j, q, sn, tau)
-        for p in range(m):
-            bw[p] += zw[p]
-            lam[p] = bw[p]
-            zw[p] = 0.0
-    if not done:
-        return False
+            Z[i, j] = 1.0 if i == j else 0.0
+    for k in range(m - 2):
+        nrm2 = 0.0
+        for j in range(k + 1, m):
+            nrm2 += G[j, k] * G[j, k]
+        nrm = math.sqrt(nrm2)
+        if nrm == 0.0:
+            continue
+        alpha = -nrm if G[k + 1, k] >= 0.0 else nrm
+        for j in range(k + 1, m):
+            v[j] = G[j, k]
+        v[k + 1] -= alpha
+        vv = 0.0
+        for j in range(k + 1, m):
+            vv += v[j] * v[j]
+        beta = 2.0 / vv
+        for i in range(k + 1, m):
+            p_[i] = 0.0
+        for j in range(k + 1, m):
+            vj = v[j]
+            for i in range(k + 1, m):
+                p_[i] += G[j, i] * vj
+        pv = 0.0
+        for i in range(k + 1, m):
+            p_[i] = beta * p_[i]
+            pv += p_[i] * v[i]
+        half = 0.5 * beta * pv
+        for i in range(k + 1, m):
+            p_[i] -= half * v[i]
+        for i in range(k + 1, m):
+            for j in range(k + 1, m):
+                G[i, j] -= v[i] * p_[j] + p_[i] * v[j]
+        G[k + 1, k] = alpha
+        G[k, k + 1] = alpha
+        # Z <- Z (I - beta v v^T) on columns k+1..m-1.
+        for r in range(m):
+            acc = 0.0
+            for j in range(k + 1, m):
+                acc += Z[r, j] * v[j]
+            acc *= beta
+            for j in range(k + 1, m):
+                Z[r, j] -= acc * v[j]
+    for i in range(m):
+        lam[i] = G[i, i]
+        e[i] = G[i + 1, i] if i < m - 1 else 0.0
+    # Implicit QL (as _tridiagonal_eigvals), each rotation applied to the columns of Z.
+    for l in range(m):
+        it = 0
+        while True:
+            mm = l
+            while mm < m - 1:
+                dd = abs(lam[mm]) + abs(lam[mm + 1])
+                if abs(e[mm]) + dd == dd:
+                    break
+                mm += 1
+            if mm == l:
+                break
+            if it >= 60:
+                return False
+            it += 1
+            g = (lam[l + 1] - lam[l]) / (2.0 * e[l])
+            r = math.sqrt(g * g + 1.0)
+            g = lam[mm] - lam[l] + e[l] / (g + (r if g >= 0.0 else -r))
+            sn = 1.0
+            cs = 1.0
+            p = 0.0
+            i = mm - 1
+            underflow = False
+            while i >= l:
+                f = sn * e[i]
+                b = cs * e[i]
+                r = math.sqrt(f * f + g * g)
+                e[i + 1] = r
+                if r == 0.0:
+                    lam[i + 1] -= p
+                    e[mm] = 0.0
+                    underflow = True
+                    break
+                sn = f / r
+                cs = g / r
+                g = lam[i + 1] - p
+                r = (lam[i] - g) * sn + 2.0 * cs * b
+                p = sn * r
+                lam[i + 1] = g + p
+                g = cs * r - b
+                for k in range(m):
+                    t = Z[k, i + 1]
+                    Z[k, i + 1] = sn * Z[k, i] + cs * t
+                    Z[k, i] = cs * Z[k, i] - sn * t
+                i -= 1
+            if underflow:
+                continue
+            lam[l] -= p
+            e[l] = g
+            e[mm] = 0.0
     for i in range(1, m):  # ascending, vectors alongside
         j = i
         while j > 0 and lam[j - 1] > lam[j]:
             lam[j - 1], lam[j] = lam[j], lam[j - 1]
             for r in range(m):
-                vecs[r, j - 1], vecs[r, j] = vecs[r, j], vecs[r, j - 1]
+                Z[r, j - 1], Z[r, j] = Z[r, j], Z[r, j - 1]
             j -= 1
     return True
 
@@ -1161,7 +1200,7 @@ def _set_hash(rd, order, kept):
 
 @numba.njit(**_JIT)
 def _set_factor(slot, rd, order, kept, offs, planar, m, support, weight_kind, s_rows, s_vecs, s_lam, s_gn, s_ok,
-                s_rd, s_len, s_offs, gram, brow, bw, zw):
+                s_rd, s_len, s_offs, gram, brow, bw, zw, ew):
     """Factorise the neighbour set of slot: rows sw_j^2 b_j, eigen-pairs of G_n and G_n^-1 e_0."""
     s_rd[slot] = rd
     s_len[slot] = kept
@@ -1185,7 +1224,7 @@ def _set_factor(slot, rd, order, kept, offs, planar, m, support, weight_kind, s_
         for b in range(a):
             gram[a, b] = gram[b, a]
     lam = s_lam[slot]
-    ok = _jacobi_eigh(gram, m, s_vecs[slot], lam, bw, zw)
+    ok = _eigh_small(gram, m, s_vecs[slot], lam, bw, zw, ew)
     ok = ok and lam[0] > 0.0 and lam[m - 1] <= _SET_COND_MAX * _SET_COND_MAX * lam[0]
     s_ok[slot] = ok
     if ok:
@@ -1290,6 +1329,7 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
     gram = np.empty((m, m))
     bw = np.empty(m)
     zw = np.empty(m)
+    ew = np.empty(m)
     zv = np.empty(m)
     yv = np.empty(m)
     gv = np.empty(m)
@@ -1432,7 +1472,7 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
                 n_sets += 1
                 table[hkey] = slot
                 _set_factor(slot, rd_used, order, kept, offs, planar, m, support, weight_kind, s_rows, s_vecs,
-                            s_lam, s_gn, s_ok, s_rd, s_len, s_offs, gram, brow2, bw, zw)
+                            s_lam, s_gn, s_ok, s_rd, s_len, s_offs, gram, brow2, bw, zw, ew)
             if slot >= 0 and s_ok[slot]:
                 cnd, bval, done = _set_solve(slot, kept, ab, m, s_rows, s_vecs, s_lam, s_gn, zv, yv, gv, dl, use,
                                              wrow, bout)

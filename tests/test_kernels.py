@@ -310,7 +310,7 @@ def _spd(rng, m, spread):
 
 
 @pytest.mark.parametrize("m", [6, 10])
-def test_jacobi_eigenpairs_match_lapack(m):
+def test_small_eigenpairs_match_lapack(m):
     # Reference: numpy.linalg.eigh (LAPACK dsyevd): eigenvalues to round-off of the largest,
     # Q orthonormal and Q diag(lam) Q^T the matrix; also a diagonal matrix and one with a
     # repeated eigenvalue (common practice, no single source).
@@ -319,9 +319,9 @@ def test_jacobi_eigenpairs_match_lapack(m):
     mats.append(np.diag(rng.uniform(1, 5, m)))
     q, _ = np.linalg.qr(rng.normal(size=(m, m)))
     mats.append((q * np.r_[[2.0, 2.0, 2.0], np.arange(3, m)]) @ q.T)
-    vecs, lam, bw, zw = np.empty((m, m)), np.empty(m), np.empty(m), np.empty(m)
+    vecs, lam, bw, zw, ew = np.empty((m, m)), np.empty(m), np.empty(m), np.empty(m), np.empty(m)
     for a in mats:
-        assert kernels._jacobi_eigh(a.copy(), m, vecs, lam, bw, zw)
+        assert kernels._eigh_small(a.copy(), m, vecs, lam, bw, zw, ew)
         ref = np.linalg.eigvalsh(a)
         np.testing.assert_allclose(lam, ref, rtol=0, atol=1e-13 * ref[-1])
         np.testing.assert_allclose(vecs.T @ vecs, np.eye(m), atol=1e-13)
