@@ -884,7 +884,13 @@ def _boundary_point(i, ox, oy, oz, reach, m, l_face, l_cc, l_box, tri, qb, grid_
     breg = 0
     bx = by = bz = 0.0
     tie = False
-    for k in range(m):
+    # The piece whose centre is nearest first: its distance then prunes most of the others.
+    first = 0
+    for k in range(1, m):
+        if l_cc[k] < l_cc[first]:
+            first = k
+    for kk in range(m):
+        k = first if kk == 0 else (kk - 1 if kk <= first else kk)
         r = math.sqrt(l_cc[k]) - l_box[k]  # no point of the piece is nearer than this
         if r > 0.0 and r * r > best:
             continue
@@ -934,7 +940,7 @@ def _boundary_point(i, ox, oy, oz, reach, m, l_face, l_cc, l_box, tri, qb, grid_
 #   * the extreme eigenvalues of G from the secular equation
 #     1 + sum_i z_i^2 / (lam_i - mu) = 0, z = Q^T a_b (Golub 1973, "Some modified
 #     matrix eigenvalue problems", SIAM Rev. 15; Bunch, Nielsen & Sorensen 1978,
-#     Numer. Math. 31), solved by Newton's method kept inside its bracket;
+#     Numer. Math. 31), solved by their two-pole model steps kept inside the bracket;
 #   * g = G^-1 e_0 by the Sherman-Morrison formula from G_n^-1 = Q diag(1/lam) Q^T,
 #     and the value weights sw_j (a_j . g), as the QR solve defines them.
 # Its rounding error grows like cond(A)^2 (against cond(A) for the QR solve), so
