@@ -44,7 +44,7 @@ from numba.typed import Dict
 
 from .proximity import ClosestPoints, _closest_on_triangle, _dot3  # noqa: F401 (_dot3 used by kernels below)
 
-__all__ = ["segments_cross_fan", "closest", "wls_value_weights", "stencil_fits"]
+__all__ = ["segments_cross_fan", "closest", "wls_value_weights", "stencil_fits", "cells_tagged"]
 
 _JIT = dict(cache=True, nogil=True, fastmath=False, error_model="numpy")
 
@@ -446,6 +446,53 @@ def closest(index, points, *, max_distance: float = math.inf) -> ClosestPoints:
         index.vertex_normal,
     )
     return ClosestPoints(point=point, distance=dist, normal=normal, face=face, exact=exact)
+
+
+# ------------------------------------------------------------- tag scans
+_ONES8 = np.uint64(0x0101010101010101)
+_HIGH8 = np.uint64(0x8080808080808080)
+
+
+@numba.njit(**_JIT)
+def _cells_tagged_nb(flat, code):
+    """np.flatnonzero(flat == code) for a uint8 array, without a whole-grid temporary.
+
+    Reads eight tags at a time and looks at the bytes of a word only when one of
+    them may equal ``code`` (the zero-byte test of x ^ code * 0x0101..: Warren,
+    Hacker's Delight, 2nd ed. 2012, §6-1).
+    """
+    n = flat.size
+    nw = n // 8
+    words = flat[: nw * 8].view(np.uint64)
+    pat = np.uint64(code) * _ONES8
+    count = 0
+    for w in range(nw):
+        x = words[w] ^ pat
+        if (x - _ONES8) & ~x & _HIGH8:
+            for b in range(8):
+                count += flat[w * 8 + b] == code
+    for i in range(nw * 8, n):
+        count += flat[i] == code
+    out = np.empty(count, np.int64)
+    c = 0
+    for w in range(nw):
+        x = words[w] ^ pat
+        if (x - _ONES8) & ~x & _HIGH8:
+            for b in range(8):
+                if flat[w * 8 + b] == code:
+                    out[c] = w * 8 + b
+                    c += 1
+    for i in range(nw * 8, n):
+        if flat[i] == code:
+            out[c] = i
+            c += 1
+    return out
+
+
+def cells_tagged(flat_tags: np.ndarray, code: int) -> np.ndarray:
+    """Sorted flat indices (int64) of the cells of a contiguous 1-D uint8 tag array holding ``code``."""
+    flat = np.ascontiguousarray(flat_tags, dtype=np.uint8).reshape(-1)
+    return _cells_tagged_nb(flat, np.uint8(code))
 
 
 # ------------------------------------------------------------- WLS solve

@@ -89,6 +89,7 @@ from .errors import InputError
 from .files import atomic_write
 from .grid import Grid
 from .kernels import closest as _closest, segments_cross_fan as _segments_cross_fan, stencil_fits as _stencil_fits
+from .kernels import cells_tagged as _cells_tagged
 from .kernels import wls_value_weights as _wls_kernel
 from .proximity import TriangleIndex
 from .triangles import _loops_from, as_triangles
@@ -683,7 +684,7 @@ def build_stencils(
     if two_d:
         lower3[2] = -0.5 * h  # the single layer's centre sits at z = 0
 
-    cells = np.flatnonzero(flat_tags == np.uint8(CellTag.INTERFACE)).astype(np.int64)
+    cells = _cells_tagged(flat_tags, CellTag.INTERFACE)  # = np.flatnonzero(flat_tags == INTERFACE), no temporary
     n = cells.size
     lim = opts.limits
     min_ok_visible = lim.min_visible if lim.min_visible is not None else int(math.ceil(1.5 * m))
@@ -783,7 +784,7 @@ def build_stencils(
             wn, ab = -wn, 2.0 - ab
         else:
             ab = ab - gap
-    wn = np.where(pad, 0.0, wn)
+    wn[pad] = 0.0  # in place: wn is this call's own array (a new one would cost page faults)
     bound = np.abs(wn).sum(axis=1) + np.abs(ab) / (h if bc == "neumann" else 1.0)
     bound[~np.isfinite(cond)] = np.inf  # no fit: unbounded
     minw = np.minimum(wn.min(axis=1), 0.0)

@@ -303,6 +303,18 @@ def test_wls_value_weights_rank_deficient_and_too_few_rows():
     assert a_few.shape == (3, 5) and np.isinf(c_few).all() and (a_few == 0).all()
 
 
+def test_cells_tagged_equals_flatnonzero():
+    # Reference: numpy.flatnonzero(flat == code); lengths that are and are not multiples of
+    # eight, runs of the code across word boundaries, an empty array, a code never present.
+    rng = np.random.default_rng(2)
+    for n in (0, 1, 7, 8, 9, 64, 1001, 100_003):
+        flat = rng.choice(np.array([0, 1, 2], np.uint8), size=n, p=[0.7, 0.2, 0.1])
+        if n > 40:
+            flat[5:27] = 2
+        for code in (0, 1, 2, 3):
+            np.testing.assert_array_equal(kernels.cells_tagged(flat, code), np.flatnonzero(flat == code))
+
+
 # ---------------------------------------------------------------- recurring neighbour sets
 def _spd(rng, m, spread):
     q, _ = np.linalg.qr(rng.normal(size=(m, m)))
