@@ -497,11 +497,15 @@ def cells_tagged(flat_tags: np.ndarray, code: int) -> np.ndarray:
 
 # ------------------------------------------------------------- WLS solve
 @numba.njit(**_JIT)
-def _tridiagonal_eigvals(d, e):
+def _tridiagonal_ql(d, e, Z, vectors):
     """Eigenvalues (in d, unordered) of the symmetric tridiagonal matrix with diagonal d and
     sub-diagonal e[:-1] (e[-1] unused), by the implicit QL algorithm with Wilkinson-type
-    shifts (Press et al., Numerical Recipes, 3rd ed. 2007, §11.4 routine tqli)."""
+    shifts (Press et al., Numerical Recipes, 3rd ed. 2007, §11.4 routine tqli). With
+    ``vectors``, each rotation is applied to the columns of Z (the eigenvectors, if Z
+    held the reduction's orthogonal factor). Returns False if an eigenvalue took more
+    than 60 iterations (it is then left as found)."""
     m = d.shape[0]
+    converged = True
     for l in range(m):
         it = 0
         while True:
@@ -511,7 +515,10 @@ def _tridiagonal_eigvals(d, e):
                 if abs(e[mm]) + dd == dd:
                     break
                 mm += 1
-            if mm == l or it >= 60:
+            if mm == l:
+                break
+            if it >= 60:
+                converged = False
                 break
             it += 1
             g = (d[l + 1] - d[l]) / (2.0 * e[l])
@@ -539,79 +546,28 @@ def _tridiagonal_eigvals(d, e):
                 p = sn * r
                 d[i + 1] = g + p
                 g = cs * r - b
+                if vectors:
+                    for k in range(m):
+                        t = Z[k, i + 1]
+                        Z[k, i + 1] = sn * Z[k, i] + cs * t
+                        Z[k, i] = cs * Z[k, i] - sn * t
                 i -= 1
             if underflow:
                 continue
             d[l] -= p
             e[l] = g
             e[mm] = 0.0
-
-
-@numba.njit(**_JIT)
-def _extreme_eigvals(G, d, e2, v, p_):  # e2: sub-diagonal work array
-    """Smallest and largest eigenvalues of the symmetric (m, m) G (overwritten).
-
-    Householder reduction to tridiagonal form (Golub & Van Loan, Matrix Computations,
-    §8.3.1), then implicit QL. Absolute accuracy about the round-off of |G|, as
-    LAPACK's dsyevd that numpy.linalg.eigvalsh calls.
-    """
-    m = G.shape[0]
-    for k in range(m - 2):
-        nrm2 = 0.0
-        for j in range(k + 1, m):
-            nrm2 += G[j, k] * G[j, k]
-        nrm = math.sqrt(nrm2)
-        if nrm == 0.0:
-            continue
-        alpha = -nrm if G[k + 1, k] >= 0.0 else nrm
-        vv = 0.0
-        for j in range(k + 1, m):
-            v[j] = G[j, k]
-        v[k + 1] -= alpha
-        for j in range(k + 1, m):
-            vv += v[j] * v[j]
-        beta = 2.0 / vv
-        # p = beta G v, w = p - (beta / 2)(p . v) v, G <- G - v w^T - w v^T on the trailing block.
-        # G v accumulated column by column (G is symmetric: row j read for column j), so each
-        # sum keeps its order and the inner loop vectorises.
-        for i in range(k + 1, m):
-            p_[i] = 0.0
-        for j in range(k + 1, m):
-            vj = v[j]
-            for i in range(k + 1, m):
-                p_[i] += G[j, i] * vj
-        pv = 0.0
-        for i in range(k + 1, m):
-            p_[i] = beta * p_[i]
-            pv += p_[i] * v[i]
-        half = 0.5 * beta * pv
-        for i in range(k + 1, m):
-            p_[i] -= half * v[i]
-        for i in range(k + 1, m):
-            for j in range(k + 1, m):
-                G[i, j] -= v[i] * p_[j] + p_[i] * v[j]
-        G[k + 1, k] = alpha
-        G[k, k + 1] = alpha
-    for i in range(m):
-        d[i] = G[i, i]
-        e2[i] = G[i + 1, i] if i < m - 1 else 0.0
-    _tridiagonal_eigvals(d, e2)
-    lmin = np.inf
-    lmax = -np.inf
-    for i in range(m):
-        lmin = min(lmin, d[i])
-        lmax = max(lmax, d[i])
-    return lmin, lmax
+    return converged
 
 
 @numba.njit(**_JIT)
 def _tridiagonalize_lanes(G4, m, v4, p4, acc, alpha, beta):
-    """:func:`_extreme_eigvals`' Householder reduction on every lane of G4 (m, m, L) at once.
+    """The Householder reduction of :func:`_eigh_small` on every lane of G4 (m, m, L) at once.
 
     Each lane goes through the one-matrix operations in the same order (a lane
     whose column is already reduced, ``nrm == 0``, takes a no-op step: v = 0,
     beta = 0, its entries rewritten with themselves), so its tridiagonal form is
-    bit for bit that of :func:`_extreme_eigvals` on that lane alone.
+    bit for bit that of the one-matrix reduction on that lane alone.
     """
     L = _LANES
     for k in range(m - 2):
@@ -756,7 +712,7 @@ def _wls_lanes(Bt, nk, nl, m, V, beta, G4, y, acc, alpha, vv, G, d, e2, v, p_, c
         for i in range(m):
             d[i] = G4[i, i, l]
             e2[i] = G4[i + 1, i, l] if i < m - 1 else 0.0
-        _tridiagonal_eigvals(d, e2)
+        _tridiagonal_ql(d, e2, G, False)
         lmin = np.inf
         lmax = -np.inf
         for i in range(m):
@@ -1055,56 +1011,8 @@ def _eigh_small(G, m, Z, lam, v, p_, e):
     for i in range(m):
         lam[i] = G[i, i]
         e[i] = G[i + 1, i] if i < m - 1 else 0.0
-    # Implicit QL (as _tridiagonal_eigvals), each rotation applied to the columns of Z.
-    for l in range(m):
-        it = 0
-        while True:
-            mm = l
-            while mm < m - 1:
-                dd = abs(lam[mm]) + abs(lam[mm + 1])
-                if abs(e[mm]) + dd == dd:
-                    break
-                mm += 1
-            if mm == l:
-                break
-            if it >= 60:
-                return False
-            it += 1
-            g = (lam[l + 1] - lam[l]) / (2.0 * e[l])
-            r = math.sqrt(g * g + 1.0)
-            g = lam[mm] - lam[l] + e[l] / (g + (r if g >= 0.0 else -r))
-            sn = 1.0
-            cs = 1.0
-            p = 0.0
-            i = mm - 1
-            underflow = False
-            while i >= l:
-                f = sn * e[i]
-                b = cs * e[i]
-                r = math.sqrt(f * f + g * g)
-                e[i + 1] = r
-                if r == 0.0:
-                    lam[i + 1] -= p
-                    e[mm] = 0.0
-                    underflow = True
-                    break
-                sn = f / r
-                cs = g / r
-                g = lam[i + 1] - p
-                r = (lam[i] - g) * sn + 2.0 * cs * b
-                p = sn * r
-                lam[i + 1] = g + p
-                g = cs * r - b
-                for k in range(m):
-                    t = Z[k, i + 1]
-                    Z[k, i + 1] = sn * Z[k, i] + cs * t
-                    Z[k, i] = cs * Z[k, i] - sn * t
-                i -= 1
-            if underflow:
-                continue
-            lam[l] -= p
-            e[l] = g
-            e[mm] = 0.0
+    if not _tridiagonal_ql(lam, e, Z, True):
+        return False
     for i in range(1, m):  # ascending, vectors alongside
         j = i
         while j > 0 and lam[j - 1] > lam[j]:
