@@ -396,6 +396,17 @@ def _cell_of(x, lo, s, n):
 
 
 @numba.njit(**_JIT)
+def _starts_of(count):
+    """Exclusive prefix sum: where each bucket's items start in a CSR list."""
+    start = np.empty(count.size, np.int64)
+    acc = 0
+    for b in range(count.size):
+        start[b] = acc
+        acc += count[b]
+    return start
+
+
+@numba.njit(**_JIT)
 def _buckets_nb(plo, phi, pc, box_lo, s, dims):
     """Both bucketings of the numpy construction by counting sorts.
 
@@ -418,12 +429,8 @@ def _buckets_nb(plo, phi, pc, box_lo, s, dims):
                 base = (bx * d1 + by) * d2
                 for bz in range(lo_b[p, 2], hi_b[p, 2] + 1):
                     count[base + bz] += 1
-    start = np.empty(nb, np.int64)
-    acc = 0
-    for b in range(nb):
-        start[b] = acc
-        acc += count[b]
-    items = np.empty(acc, np.int64)
+    start = _starts_of(count)
+    items = np.empty(start[nb - 1] + count[nb - 1] if nb else 0, np.int64)
     fill = start.copy()
     for p in range(npc):
         for bx in range(lo_b[p, 0], hi_b[p, 0] + 1):
@@ -439,11 +446,7 @@ def _buckets_nb(plo, phi, pc, box_lo, s, dims):
             + _cell_of(pc[p, 2], box_lo[2], s, d2)
         cbucket[p] = b
         ccount[b] += 1
-    cstart = np.empty(nb, np.int64)
-    acc = 0
-    for b in range(nb):
-        cstart[b] = acc
-        acc += ccount[b]
+    cstart = _starts_of(ccount)
     citems = np.empty(npc, np.int64)
     fill = cstart.copy()
     for p in range(npc):
