@@ -198,6 +198,44 @@ def _fan_row(ox, oy, oz, ex, ey, ez, nc, hit, reach, grid_origin, s, dims, cstar
 
 
 @numba.njit(**_JIT)
+def _screened_fan_test(ox, oy, oz, ex, ey, ez, nc, hit, m, tri, fnormal, l_face, l_cx, l_cy, l_cz, l_box, l_so,
+                       l_cc, l_r2, c_mx, c_my, c_mz, c_ok, bx0, by0, bz0, hx, hy, hz, seg_len, ex2, ey2, ez2, hit2,
+                       idx2):
+    """:func:`_fan_test` behind an exact height screen along the direction (hx, hy, hz) from (bx0, by0, bz0).
+
+    No gathered triangle rises above ``top`` along that direction, so a segment
+    whose two ends are both higher (by far more than round-off) meets none of them
+    and needs no crossing test; the others are tested. With the boundary point and
+    normal, near a convex patch that is every candidate on the fluid side.
+    """
+    top = -np.inf
+    far = 0.0
+    for k in range(m):
+        f = l_face[k]
+        for c3 in range(3):
+            vx, vy, vz = tri[f, c3, 0] - bx0, tri[f, c3, 1] - by0, tri[f, c3, 2] - bz0
+            top = max(top, vx * hx + vy * hy + vz * hz)
+            far = max(far, abs(vx) + abs(vy) + abs(vz))
+    top += 1e-9 * (far + seg_len)
+    if not ((ox - bx0) * hx + (oy - by0) * hy + (oz - bz0) * hz > top):
+        _fan_test(ox, oy, oz, ex, ey, ez, nc, hit, m, tri, fnormal, l_face, l_cx, l_cy, l_cz, l_box, l_so, l_cc,
+                  l_r2, c_mx, c_my, c_mz, c_ok)
+        return
+    n2 = 0
+    for jj in range(nc):
+        if not ((ex[jj] - bx0) * hx + (ey[jj] - by0) * hy + (ez[jj] - bz0) * hz > top):
+            idx2[n2] = jj
+            ex2[n2], ey2[n2], ez2[n2] = ex[jj], ey[jj], ez[jj]
+            hit2[n2] = False
+            n2 += 1
+    if n2 > 0:
+        _fan_test(ox, oy, oz, ex2, ey2, ez2, n2, hit2, m, tri, fnormal, l_face, l_cx, l_cy, l_cz, l_box, l_so, l_cc,
+                  l_r2, c_mx, c_my, c_mz, c_ok)
+        for q in range(n2):
+            hit[idx2[q]] = hit2[q]
+
+
+@numba.njit(**_JIT)
 def _fan_scratch(cap, c):
     """Scratch arrays of _fan_row for up to cap gathered pieces and c segments."""
     return (np.empty(3, dtype=np.int64), np.empty(3, dtype=np.int64), np.empty(cap, dtype=np.int64),
@@ -1364,41 +1402,19 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
                                  citems, pcentre, pradius, pparent, tri, fnormal, rmax, lo, hi, l_face, l_cx, l_cy,
                                  l_cz, l_box, l_so, l_cc, l_r2)
                 if nc > 0 and mg > 0:
-                    # Height screen (exact): no gathered triangle rises above `top` along the
-                    # boundary normal, so a segment whose two ends are both higher (by far more
-                    # than round-off) meets none of them and needs no crossing test. Near a
-                    # convex patch that is every candidate on the fluid side.
-                    bx0, by0, bz0 = bpt[i, 0], bpt[i, 1], bpt[i, 2]
-                    hx, hy, hz = nrm[i, 0], nrm[i, 1], nrm[i, 2]
-                    top = -np.inf
-                    far = 0.0
-                    for k in range(mg):
-                        f = l_face[k]
-                        for c3 in range(3):
-                            vx, vy, vz = tri[f, c3, 0] - bx0, tri[f, c3, 1] - by0, tri[f, c3, 2] - bz0
-                            top = max(top, vx * hx + vy * hy + vz * hz)
-                            far = max(far, abs(vx) + abs(vy) + abs(vz))
-                    top += 1e-9 * (far + math.sqrt(longest))
-                    if (ox - bx0) * hx + (oy - by0) * hy + (oz - bz0) * hz > top:
-                        n2 = 0
-                        for jj in range(nc):
-                            if not ((ex[jj] - bx0) * hx + (ey[jj] - by0) * hy + (ez[jj] - bz0) * hz > top):
-                                idx2[n2] = jj
-                                ex2[n2], ey2[n2], ez2[n2] = ex[jj], ey[jj], ez[jj]
-                                hit2[n2] = False
-                                n2 += 1
-                        if n2 > 0:
-                            _fan_test(ox, oy, oz, ex2, ey2, ez2, n2, hit2, mg, tri, fnormal, l_face, l_cx, l_cy,
-                                      l_cz, l_box, l_so, l_cc, l_r2, c_mx, c_my, c_mz, c_ok)
-                            for q in range(n2):
-                                hit[idx2[q]] = hit2[q]
-                    else:
-                        _fan_test(ox, oy, oz, ex, ey, ez, nc, hit, mg, tri, fnormal, l_face, l_cx, l_cy, l_cz,
-                                  l_box, l_so, l_cc, l_r2, c_mx, c_my, c_mz, c_ok)
+                    _screened_fan_test(ox, oy, oz, ex, ey, ez, nc, hit, mg, tri, fnormal, l_face, l_cx, l_cy, l_cz,
+                                       l_box, l_so, l_cc, l_r2, c_mx, c_my, c_mz, c_ok, bpt[i, 0], bpt[i, 1],
+                                       bpt[i, 2], nrm[i, 0], nrm[i, 1], nrm[i, 2], math.sqrt(longest), ex2, ey2,
+                                       ez2, hit2, idx2)
             elif nc > 0:
-                _fan_row(ox, oy, oz, ex, ey, ez, nc, hit, math.sqrt(longest) * (1 + 1e-9), grid_origin, s, dims,
-                         cstart, ccount, citems, pcentre, pradius, pparent, tri, fnormal, rmax, lo, hi, l_face,
-                         l_cx, l_cy, l_cz, l_box, l_so, l_cc, l_r2, c_mx, c_my, c_mz, c_ok)
+                mg = _gather(ox, oy, oz, math.sqrt(longest) * (1 + 1e-9), grid_origin, s, dims, cstart, ccount,
+                             citems, pcentre, pradius, pparent, tri, fnormal, rmax, lo, hi, l_face, l_cx, l_cy, l_cz,
+                             l_box, l_so, l_cc, l_r2)
+                if mg > 0:
+                    _screened_fan_test(ox, oy, oz, ex, ey, ez, nc, hit, mg, tri, fnormal, l_face, l_cx, l_cy, l_cz,
+                                       l_box, l_so, l_cc, l_r2, c_mx, c_my, c_mz, c_ok, bpt[i, 0], bpt[i, 1],
+                                       bpt[i, 2], nrm[i, 0], nrm[i, 1], nrm[i, 2], math.sqrt(longest), ex2, ey2,
+                                       ez2, hit2, idx2)
             if nc > 0:
                 for jj in range(nc):
                     if not hit[jj]:
