@@ -28,7 +28,7 @@ multiply-add), numpy's floating-point error model (a division by zero gives
 inf/NaN, as in numpy), single-threaded and releasing the GIL. The first call in
 a fresh environment compiles them (with the classifier's kernels, the demo's first
 run takes about forty seconds longer than the next ones on the reference machine:
-57 s against 13-15 s); numba caches the
+51-57 s against 10-12 s); numba caches the
 machine code on disk (``__pycache__``), after which loading takes a few
 hundredths of a second.
 """
