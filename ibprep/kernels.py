@@ -984,12 +984,14 @@ def _boundary_point(i, ox, oy, oz, reach, m, l_face, l_cc, l_box, tri, qb, grid_
 #     Numer. Math. 31), solved by their two-pole model steps kept inside the bracket;
 #   * g = G^-1 e_0 by the Sherman-Morrison formula from G_n^-1 = Q diag(1/lam) Q^T,
 #     and the value weights sw_j (a_j . g), as the QR solve defines them.
-# Its rounding error grows like cond(A)^2 (against cond(A) for the QR solve), so
-# the update is used only where both the set's and the stencil's condition are
-# at most _SET_COND_MAX: there it agrees with the QR solve to about 1e-13 of the
-# largest weight (tests/test_kernels.py). Any other stencil, and the image-point
+# Its rounding error grows like cond(A)^2 eps (against cond(A) eps for the QR
+# solve), so the update is used only where both the set's and the stencil's
+# condition are at most _SET_COND_MAX: there it agrees with the QR solve to a few
+# 1e-13 of the largest weight (about 40^2 x 2.2e-16 = 3.5e-13 at the cap; measured
+# up to 3.9e-13 with the cap at 50, so the cap is 40), against the 1e-12 the tests
+# hold it to (tests/test_kernels.py). Any other stencil, and the image-point
 # method, take the QR solve.
-_SET_COND_MAX = 50.0
+_SET_COND_MAX = 40.0
 
 
 @numba.njit(**_JIT)
@@ -1320,7 +1322,8 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
     ab = np.empty(m)
     # Factorised neighbour sets (see _SET_COND_MAX): hash -> slot.
     table = Dict.empty(key_type=types.int64, value_type=types.int64)
-    set_cap = min(n, 8192)
+    # At most 8192 sets and about 160 MB of rows; none for the image point (never cell-centred).
+    set_cap = 0 if image else min(n, 8192, max(1, 20_000_000 // (kmax * m)))
     n_sets = 0
     s_rows = np.empty((set_cap, kmax, m))
     s_vecs = np.empty((set_cap, m, m))
@@ -1579,7 +1582,9 @@ def stencil_fits(tags, shape3, lower3, h, cells, anchor, origin, centre, allowed
     cells : (n,) int — flat indices of the interface cells.
     anchor : (n, 3) int — the cell the offsets start from.
     origin : (n, 3) float — metres; where visibility is tested from.
-    centre : (n, 3) float — metres; the fitting point.
+    centre : (n, 3) float — metres; the fitting point. Unless ``image``, it must be
+        the centre of the anchor cell: the neighbour rows then use the exact
+        index offsets from ``anchor``.
     allowed : (3,) bool — which tags may be neighbours.
     offsets : (no, 3) int — candidate offsets sorted by length.
     radii : sequence of float — cells; the rounds' radii, increasing.

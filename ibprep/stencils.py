@@ -775,7 +775,7 @@ def build_stencils(
     )
     k = int(max(1, nvis.max()))
     nb = np.ascontiguousarray(nb[:, :k])
-    wn = wn[:, :k]
+    wn = np.ascontiguousarray(wn[:, :k])  # compact: the table keeps no wider buffer alive
     pad = nb < 0
     ab = ab * (h if bc == "neumann" else 1.0)  # Neumann row was scaled by h
     if method == "image-point":

@@ -346,6 +346,10 @@ def test_tables_are_read_only_and_keep_their_values():
     grid, loop, tags = _circle_case(6)
     st = build_stencils(tags, grid, loop)
     assert not any(getattr(st, name).flags.writeable for name in ("cells", "neighbours", "weights", "condition"))
+    # A wide neighbour cap leaves no wide buffer behind the kept columns.
+    wide = build_stencils(tags, grid, loop, max_neighbours=500)
+    assert wide.weights.flags.c_contiguous and wide.weights.shape == wide.neighbours.shape
+    assert wide.weights.base is None or wide.weights.base.size == wide.weights.size
     fields = {name: np.array(getattr(st, name)) for name in (
         "cells", "neighbours", "weights", "boundary_point", "boundary_normal", "boundary_weight",
         "condition", "ok", "n_visible", "weight_bound", "min_weight")}
