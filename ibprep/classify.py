@@ -437,6 +437,48 @@ def _first_beyond_nb(xs, inv_h, x):
     return i
 
 
+@numba.njit(inline="always", **_JIT)
+def _plane_abscissa_nb(x0, x1, x2, dyab, dzab, e2y, e2z):
+    """(ax, ky, kz, xlo, xhi): the crossing of row (py, pz) is ax - ((py - y0) ky + (pz - z0) kz),
+    clipped to [xlo, xhi]; the mid abscissa if the normal's x component underflowed."""
+    e1x = x1 - x0
+    e2x = x2 - x0
+    n_x = dyab * e2z - dzab * e2y
+    n_y = dzab * e2x - e1x * e2z
+    n_z = e1x * e2y - dyab * e2x
+    ky = n_y / n_x
+    kz = n_z / n_x
+    xlo = min(min(x0, x1), x2)
+    xhi = max(max(x0, x1), x2)
+    ax = x0
+    if not (np.isfinite(ky) and np.isfinite(kz)):  # n_x underflowed: the mid abscissa
+        ky = 0.0
+        kz = 0.0
+        ax = 0.5 * (xlo + xhi)
+    return ax, ky, kz, xlo, xhi
+
+
+@numba.njit(inline="always", **_JIT)
+def _edge_sides_nb(py, pz, y0, z0, y1, z1, y2, z2, dyab, dzab, dybc, dzbc, dyca, dzca):
+    """(sure, l_ab, l_bc, l_ca): :func:`_side_filtered` for the three edges, same expressions."""
+    r = (pz - z0) * dyab
+    s = (py - y0) * dzab
+    d = r - s
+    sure = abs(d) > (abs(r) + abs(s)) * _CCW_ERRBOUND
+    l_ab = d > 0
+    r = (pz - z1) * dybc
+    s = (py - y1) * dzbc
+    d = r - s
+    sure = sure and abs(d) > (abs(r) + abs(s)) * _CCW_ERRBOUND
+    l_bc = d > 0
+    r = (pz - z2) * dyca
+    s = (py - y2) * dzca
+    d = r - s
+    sure = sure and abs(d) > (abs(r) + abs(s)) * _CCW_ERRBOUND
+    l_ca = d > 0
+    return sure, l_ab, l_bc, l_ca
+
+
 @numba.njit(**_JIT)
 def _crossings_nb(vx, vy, vz, f0, f1, f2, xs, ys, zs):
     """Crossings of every triangle the filter settles; returns (i, j, k, w, count, exact).
@@ -497,41 +539,14 @@ def _crossings_nb(vx, vy, vz, f0, f1, f2, xs, ys, zs):
         dyab, dzab = y1 - y0, z1 - z0
         dybc, dzbc = y2 - y1, z2 - z1
         dyca, dzca = y0 - y2, z0 - z2
-        e1x = x1 - x0
-        e2x, e2y, e2z = x2 - x0, y2 - y0, z2 - z0
-        n_x = dyab * e2z - dzab * e2y
-        n_y = dzab * e2x - e1x * e2z
-        n_z = e1x * e2y - dyab * e2x
-        ky = n_y / n_x
-        kz = n_z / n_x
-        xlo = min(min(x0, x1), x2)
-        xhi = max(max(x0, x1), x2)
-        ax = x0
-        if not (np.isfinite(ky) and np.isfinite(kz)):  # n_x underflowed: the mid abscissa
-            ky = 0.0
-            kz = 0.0
-            ax = 0.5 * (xlo + xhi)
+        ax, ky, kz, xlo, xhi = _plane_abscissa_nb(x0, x1, x2, dyab, dzab, y2 - y0, z2 - z0)
         start = n
         for j in range(j0s[t], j1s[t]):
             py = ys[j]
             for k in range(k0s[t], k1s[t]):
                 pz = zs[k]
-                # _side_filtered for the three edges, same expressions.
-                r = (pz - z0) * dyab
-                s = (py - y0) * dzab
-                d = r - s
-                sure = abs(d) > (abs(r) + abs(s)) * _CCW_ERRBOUND
-                l_ab = d > 0
-                r = (pz - z1) * dybc
-                s = (py - y1) * dzbc
-                d = r - s
-                sure = sure and abs(d) > (abs(r) + abs(s)) * _CCW_ERRBOUND
-                l_bc = d > 0
-                r = (pz - z2) * dyca
-                s = (py - y2) * dzca
-                d = r - s
-                sure = sure and abs(d) > (abs(r) + abs(s)) * _CCW_ERRBOUND
-                l_ca = d > 0
+                sure, l_ab, l_bc, l_ca = _edge_sides_nb(py, pz, y0, z0, y1, z1, y2, z2, dyab, dzab, dybc, dzbc,
+                                                        dyca, dzca)
                 if not sure:
                     status[t] = 2
                     break
@@ -742,20 +757,7 @@ def _crossing_rows_nb(v, f, xs, ys, zs, cap, i_proto):
         x0, x1, x2 = v[a, 0], v[b, 0], v[c, 0]
         dybc, dzbc = y2 - y1, z2 - z1
         dyca, dzca = y0 - y2, z0 - z2
-        e1x = x1 - x0
-        e2x = x2 - x0
-        n_x = dyab * e2z - dzab * e2y
-        n_y = dzab * e2x - e1x * e2z
-        n_z = e1x * e2y - dyab * e2x
-        ky = n_y / n_x
-        kz = n_z / n_x
-        xlo = min(min(x0, x1), x2)
-        xhi = max(max(x0, x1), x2)
-        ax = x0
-        if not (np.isfinite(ky) and np.isfinite(kz)):  # n_x underflowed: the mid abscissa
-            ky = 0.0
-            kz = 0.0
-            ax = 0.5 * (xlo + xhi)
+        ax, ky, kz, xlo, xhi = _plane_abscissa_nb(x0, x1, x2, dyab, dzab, e2y, e2z)
         first = n
         # Rows of at most 3 candidates (small triangles): the in/out branch would
         # mispredict often, so every candidate is written and kept by n += inside.
@@ -767,22 +769,8 @@ def _crossing_rows_nb(v, f, xs, ys, zs, cap, i_proto):
             rj = (j - jb) * nk - kb
             for k in range(k0, k1):
                 pz = zs[k]
-                # _side_filtered for the three edges, same expressions.
-                r = (pz - z0) * dyab
-                s = (py - y0) * dzab
-                d = r - s
-                sure = abs(d) > (abs(r) + abs(s)) * _CCW_ERRBOUND
-                l_ab = d > 0
-                r = (pz - z1) * dybc
-                s = (py - y1) * dzbc
-                d = r - s
-                sure = sure and abs(d) > (abs(r) + abs(s)) * _CCW_ERRBOUND
-                l_bc = d > 0
-                r = (pz - z2) * dyca
-                s = (py - y2) * dzca
-                d = r - s
-                sure = sure and abs(d) > (abs(r) + abs(s)) * _CCW_ERRBOUND
-                l_ca = d > 0
+                sure, l_ab, l_bc, l_ca = _edge_sides_nb(py, pz, y0, z0, y1, z1, y2, z2, dyab, dzab, dybc, dzbc,
+                                                        dyca, dzca)
                 if not sure:
                     unsure = True
                     break
