@@ -504,6 +504,162 @@ def _index_tables_compiled(tri, ids, s, box_lo, box_hi, dims):
     return (parent, pc, pr, wq, *tables)
 
 
+def _surface_tables_numpy(v, f, check_orientation):
+    """Corners, unit face normals, edge and vertex pseudo-normals, per-face boxes (numpy reference).
+
+    Returns tri (nf, 3, 3), fn (nf, 3), en (nf, 3, 3: edges ab, bc, ca), vn (nv, 3),
+    lo and hi (nf, 3). Normals are flipped to point outward if check_orientation
+    and the signed volume is negative.
+    """
+    tri = v[f]  # (nf, 3, 3)
+    n = np.cross(tri[:, 1] - tri[:, 0], tri[:, 2] - tri[:, 0])
+    volume6 = float(np.einsum("ij,ij->", tri[:, 0], n))
+    if check_orientation and volume6 < 0:
+        n = -n
+    nlen = np.linalg.norm(n, axis=1)
+    fn = np.divide(n, nlen[:, None], out=np.zeros_like(n), where=nlen[:, None] > 0)
+    # Vertex pseudo-normals: incident face normals weighted by the corner angle.
+    ang = np.empty((f.shape[0], 3))
+    for k in range(3):  # three corners, not a loop over triangles
+        e1 = tri[:, (k + 1) % 3] - tri[:, k]
+        e2 = tri[:, (k + 2) % 3] - tri[:, k]
+        cosang = np.einsum("ij,ij->i", e1, e2) / np.maximum(
+            np.linalg.norm(e1, axis=1) * np.linalg.norm(e2, axis=1), 1e-300
+        )
+        ang[:, k] = np.arccos(np.clip(cosang, -1.0, 1.0))
+    # Sums per vertex by bincount (the same sequential sums as np.add.at, faster).
+    contrib = (ang[:, :, None] * fn[:, None, :]).reshape(-1, 3)
+    vn = np.stack([np.bincount(f.ravel(), weights=contrib[:, c], minlength=v.shape[0]) for c in range(3)], axis=1)
+    vn /= np.maximum(np.linalg.norm(vn, axis=1), 1e-300)[:, None]
+    # Edge pseudo-normals: sum of the face normals sharing the edge.
+    ends = np.stack([f, np.roll(f, -1, axis=1)], axis=-1).reshape(-1, 2)  # edges ab, bc, ca per face
+    key = np.sort(ends, axis=1)
+    _, inverse = np.unique(key[:, 0] * (v.shape[0] + 1) + key[:, 1], return_inverse=True)
+    fn3 = np.repeat(fn, 3, axis=0)
+    en_sum = np.stack([np.bincount(inverse, weights=fn3[:, c]) for c in range(3)], axis=1)
+    en = en_sum[inverse]
+    en /= np.maximum(np.linalg.norm(en, axis=1), 1e-300)[:, None]
+    en = en.reshape(-1, 3, 3)
+    lo = tri.min(axis=1)
+    hi = tri.max(axis=1)
+    return tri, fn, en, vn, lo, hi
+
+
+@numba.njit(**_JIT)
+def _surface_tables_nb(v, f, check_orientation):
+    """:func:`_surface_tables_numpy` in one compiled pass (equal to round-off)."""
+    nf = f.shape[0]
+    nv = v.shape[0]
+    tri = np.empty((nf, 3, 3))
+    n = np.empty((nf, 3))
+    lo = np.empty((nf, 3))
+    hi = np.empty((nf, 3))
+    volume6 = 0.0
+    for t in range(nf):
+        for c in range(3):
+            for k in range(3):
+                tri[t, c, k] = v[f[t, c], k]
+        ux, uy, uz = tri[t, 1, 0] - tri[t, 0, 0], tri[t, 1, 1] - tri[t, 0, 1], tri[t, 1, 2] - tri[t, 0, 2]
+        wx, wy, wz = tri[t, 2, 0] - tri[t, 0, 0], tri[t, 2, 1] - tri[t, 0, 1], tri[t, 2, 2] - tri[t, 0, 2]
+        n[t, 0] = uy * wz - uz * wy
+        n[t, 1] = uz * wx - ux * wz
+        n[t, 2] = ux * wy - uy * wx
+        volume6 += tri[t, 0, 0] * n[t, 0] + tri[t, 0, 1] * n[t, 1] + tri[t, 0, 2] * n[t, 2]
+        for k in range(3):
+            lo[t, k] = min(tri[t, 0, k], tri[t, 1, k], tri[t, 2, k])
+            hi[t, k] = max(tri[t, 0, k], tri[t, 1, k], tri[t, 2, k])
+    sign = -1.0 if (check_orientation and volume6 < 0) else 1.0
+    fn = np.zeros((nf, 3))
+    vn = np.zeros((nv, 3))
+    for t in range(nf):
+        nx, ny, nz = sign * n[t, 0], sign * n[t, 1], sign * n[t, 2]
+        nl = math.sqrt(nx * nx + ny * ny + nz * nz)
+        if nl > 0:
+            fn[t, 0], fn[t, 1], fn[t, 2] = nx / nl, ny / nl, nz / nl
+        # Vertex pseudo-normals: incident face normals weighted by the corner angle.
+        for c in range(3):
+            a, b, d = tri[t, c], tri[t, (c + 1) % 3], tri[t, (c + 2) % 3]
+            e1x, e1y, e1z = b[0] - a[0], b[1] - a[1], b[2] - a[2]
+            e2x, e2y, e2z = d[0] - a[0], d[1] - a[1], d[2] - a[2]
+            l12 = math.sqrt(e1x * e1x + e1y * e1y + e1z * e1z) * math.sqrt(e2x * e2x + e2y * e2y + e2z * e2z)
+            cosang = (e1x * e2x + e1y * e2y + e1z * e2z) / max(l12, 1e-300)
+            ang = math.acos(min(max(cosang, -1.0), 1.0))
+            q = f[t, c]
+            for k in range(3):
+                vn[q, k] += ang * fn[t, k]
+    for q in range(nv):
+        ln = max(math.sqrt(vn[q, 0] * vn[q, 0] + vn[q, 1] * vn[q, 1] + vn[q, 2] * vn[q, 2]), 1e-300)
+        for k in range(3):
+            vn[q, k] /= ln
+    # Edge pseudo-normals: the sum of the normals of the faces sharing the edge. Edges
+    # grouped by their lower vertex (counting sort), then matched by the upper one.
+    ne = 3 * nf
+    elo = np.empty(ne, np.int64)
+    ehi = np.empty(ne, np.int64)
+    count = np.zeros(nv + 1, np.int64)
+    for t in range(nf):
+        for c in range(3):
+            a, b = f[t, c], f[t, (c + 1) % 3]
+            e = 3 * t + c
+            elo[e], ehi[e] = min(a, b), max(a, b)
+            count[elo[e] + 1] += 1
+    for q in range(nv):
+        count[q + 1] += count[q]
+    fill = count[:nv].copy()
+    byv = np.empty(ne, np.int64)
+    for e in range(ne):
+        byv[fill[elo[e]]] = e
+        fill[elo[e]] += 1
+    group = np.full(ne, -1, np.int64)  # first edge (in face order) of each edge's group
+    esum = np.zeros((ne, 3))
+    for q in range(nv):
+        for p in range(count[q], count[q + 1]):
+            e = byv[p]
+            if group[e] >= 0:
+                continue
+            group[e] = e
+            for p2 in range(p + 1, count[q + 1]):
+                e2 = byv[p2]
+                if group[e2] < 0 and ehi[e2] == ehi[e]:
+                    group[e2] = e
+    for e in range(ne):  # face order, as the numpy reference's bincount sums
+        g = group[e]
+        t = e // 3
+        for k in range(3):
+            esum[g, k] += fn[t, k]
+    en = np.empty((nf, 3, 3))
+    for e in range(ne):
+        g = group[e]
+        ln = max(math.sqrt(esum[g, 0] * esum[g, 0] + esum[g, 1] * esum[g, 1] + esum[g, 2] * esum[g, 2]), 1e-300)
+        for k in range(3):
+            en[e // 3, e % 3, k] = esum[g, k] / ln
+    return tri, fn, en, vn, lo, hi
+
+
+@numba.njit(**_JIT)
+def _edge_lengths_nb(v, f):
+    """Lengths of the edges ab, bc, ca of every face, flat (3 nf,)."""
+    out = np.empty(3 * f.shape[0])
+    for t in range(f.shape[0]):
+        for c in range(3):
+            a, b = f[t, c], f[t, (c + 1) % 3]
+            dx, dy, dz = v[b, 0] - v[a, 0], v[b, 1] - v[a, 1], v[b, 2] - v[a, 2]
+            out[3 * t + c] = math.sqrt(dx * dx + dy * dy + dz * dz)
+    return out
+
+
+def median_edge_length(vertices, faces) -> float:
+    """Median edge length of a triangle surface, metres (each shared edge counted per face)."""
+    v = np.ascontiguousarray(vertices, dtype=float)
+    f = np.ascontiguousarray(faces, dtype=np.int64)
+    return float(np.median(_edge_lengths_nb(v, f)))
+
+
+def _surface_tables_compiled(v, f, check_orientation):
+    """:func:`_surface_tables_numpy` on the compiled kernel."""
+    return _surface_tables_nb(v, f, check_orientation)
+
+
 def _expand_csr(owner, starts, counts):
     """Flatten CSR ranges: (owner of each item, item position) for ranges starts[i]:starts[i]+counts[i]."""
     total = int(counts.sum())
@@ -569,38 +725,8 @@ class TriangleIndex:
         s = float(self.bucket_size)
         if not (math.isfinite(s) and s > 0):
             raise InputError(f"bucket_size must be a positive length in metres, got {self.bucket_size!r}")
-        tri = v[f]  # (nf, 3, 3)
-        n = np.cross(tri[:, 1] - tri[:, 0], tri[:, 2] - tri[:, 0])
-        volume6 = float(np.einsum("ij,ij->", tri[:, 0], n))
-        if self.check_orientation and volume6 < 0:
-            n = -n
-        nlen = np.linalg.norm(n, axis=1)
-        fn = np.divide(n, nlen[:, None], out=np.zeros_like(n), where=nlen[:, None] > 0)
-        # Vertex pseudo-normals: incident face normals weighted by the corner angle.
-        ang = np.empty((f.shape[0], 3))
-        for k in range(3):  # three corners, not a loop over triangles
-            e1 = tri[:, (k + 1) % 3] - tri[:, k]
-            e2 = tri[:, (k + 2) % 3] - tri[:, k]
-            cosang = np.einsum("ij,ij->i", e1, e2) / np.maximum(
-                np.linalg.norm(e1, axis=1) * np.linalg.norm(e2, axis=1), 1e-300
-            )
-            ang[:, k] = np.arccos(np.clip(cosang, -1.0, 1.0))
-        # Sums per vertex by bincount (the same sequential sums as np.add.at, faster).
-        contrib = (ang[:, :, None] * fn[:, None, :]).reshape(-1, 3)
-        vn = np.stack([np.bincount(f.ravel(), weights=contrib[:, c], minlength=v.shape[0]) for c in range(3)], axis=1)
-        vn /= np.maximum(np.linalg.norm(vn, axis=1), 1e-300)[:, None]
-        # Edge pseudo-normals: sum of the face normals sharing the edge.
-        ends = np.stack([f, np.roll(f, -1, axis=1)], axis=-1).reshape(-1, 2)  # edges ab, bc, ca per face
-        key = np.sort(ends, axis=1)
-        _, inverse = np.unique(key[:, 0] * (v.shape[0] + 1) + key[:, 1], return_inverse=True)
-        fn3 = np.repeat(fn, 3, axis=0)
-        en_sum = np.stack([np.bincount(inverse, weights=fn3[:, c]) for c in range(3)], axis=1)
-        en = en_sum[inverse]
-        en /= np.maximum(np.linalg.norm(en, axis=1), 1e-300)[:, None]
-        en = en.reshape(-1, 3, 3)
-
-        lo = tri.min(axis=1)
-        hi = tri.max(axis=1)
+        surface = _surface_tables_compiled if _COMPILED_INDEX else _surface_tables_numpy
+        tri, fn, en, vn, lo, hi = surface(v, f, bool(self.check_orientation))
         box_lo = lo.min(axis=0)
         box_hi = hi.max(axis=0)
         if self.region_lower is not None:

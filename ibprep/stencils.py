@@ -91,7 +91,7 @@ from .grid import Grid
 from .kernels import closest as _closest, segments_cross_fan as _segments_cross_fan, stencil_fits as _stencil_fits
 from .kernels import cells_tagged as _cells_tagged
 from .kernels import wls_value_weights as _wls_kernel
-from .proximity import TriangleIndex
+from .proximity import TriangleIndex, median_edge_length
 from .triangles import _loops_from, as_triangles
 
 __all__ = ["Stencils", "StencilLimits", "StencilSummary", "build_stencils", "load_stencils"]
@@ -965,8 +965,7 @@ def _bucket_size(vertices: np.ndarray, faces: np.ndarray, h: float) -> float:
     Long triangles are indexed in bucket-sized pieces, so the bucket follows the
     grid (the stencil reach is a few cells) more than the mesh.
     """
-    e = np.linalg.norm(vertices[faces] - vertices[np.roll(faces, 1, axis=1)], axis=2)
-    return float(np.clip(2.0 * np.median(e), h, 2.0 * h))
+    return float(np.clip(2.0 * median_edge_length(vertices, faces), h, 2.0 * h))
 
 
 def _visible(index, good, cflat, origin, centres_of):

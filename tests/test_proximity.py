@@ -107,10 +107,12 @@ _TABLES = ("piece_parent", "piece_centre", "piece_radius", "piece_witness", "buc
            "bucket_items", "centre_start", "centre_count", "centre_items")
 
 
-@pytest.mark.parametrize("case", ["annulus", "plate", "clipped", "sliver"])
+@pytest.mark.parametrize("case", ["annulus", "plate", "clipped", "sliver", "inward"])
 def test_compiled_index_tables_equal_the_numpy_construction(case, monkeypatch):
-    # Reference: the numpy construction (proximity._index_tables_numpy); the compiled
-    # one must give the same pieces, witnesses and buckets bit for bit.
+    # Reference: the numpy construction (proximity._index_tables_numpy and
+    # _surface_tables_numpy); the compiled one must give the same pieces, witnesses,
+    # buckets and face and edge normals bit for bit, and the vertex pseudo-normals to
+    # round-off (math.acos and numpy's arccos may differ in the last bit).
     from ibprep import proximity
 
     region = {}
@@ -124,6 +126,9 @@ def test_compiled_index_tables_equal_the_numpy_construction(case, monkeypatch):
         m = _annulus()
         v, f, size = m.vertices, m.faces, 0.1
         region = dict(region_lower=(-0.3, -2.0, -0.1), region_upper=(2.0, 0.35, 2.0))
+    elif case == "inward":  # faces wound inward: the normals must be flipped outward
+        m = _annulus()
+        v, f, size = m.vertices, m.faces[:, ::-1], 0.15
     else:  # long thin slivers of a twisted strip, pieces along their length
         rng = np.random.default_rng(3)
         m = trimesh.creation.icosphere(subdivisions=1)
@@ -138,6 +143,14 @@ def test_compiled_index_tables_equal_the_numpy_construction(case, monkeypatch):
         got, ref = getattr(built[True], name), getattr(built[False], name)
         assert got.dtype == ref.dtype, name
         np.testing.assert_array_equal(got, ref, err_msg=name)
+    for name in ("tri", "face_normal", "edge_normal"):
+        np.testing.assert_array_equal(getattr(built[True], name), getattr(built[False], name), err_msg=name)
+    np.testing.assert_allclose(built[True].vertex_normal, built[False].vertex_normal, rtol=0, atol=1e-15)
+    # Outside check: unit face normals as trimesh computes them (Trimesh.face_normals),
+    # pointing outward (the annulus is closed; trimesh orders the faces as given).
+    if case in ("annulus", "inward"):
+        ref = trimesh.Trimesh(v, f, process=False).face_normals * (-1.0 if case == "inward" else 1.0)
+        np.testing.assert_allclose(built[True].face_normal, ref, atol=1e-12)
 
 
 def test_segment_through_thin_plate_detected():
