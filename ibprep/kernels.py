@@ -1199,6 +1199,67 @@ def _set_hash(rd, order, kept):
     return np.int64(hsh & np.uint64(0x7FFFFFFFFFFFFFFF))
 
 
+# Lattice symmetry of the sets: a set and its image under a signed permutation T of the
+# axes (the 48 symmetries of the cube; the 8 of the square on planar grids) share one
+# factorisation. The basis rows of T o are a signed permutation P of those of o, so with
+# the boundary row carried by T as well the Gram matrix becomes P G P^T: the same
+# eigenvalues, and the same value weights (e_0, the constant term, is fixed by P). Each
+# set is therefore factorised in a canonical frame chosen from the set itself: T flips
+# the axes along which the sum of its offsets is negative and orders them by the sum's
+# magnitude (ties by axis). Sets recur about six times more often so on a sphere.
+_PERMS = ((0, 1, 2), (0, 2, 1), (1, 0, 2), (1, 2, 0), (2, 0, 1), (2, 1, 0))
+
+
+def _symmetry_tables(offsets):
+    """(48, no) index of T(offsets[c]) in offsets, (48, 3) axis taken and (48, 3) sign, per T.
+
+    T has code 8 p + signs: output axis j is sign[j] * input axis _PERMS[p][j]; the
+    sign bits flip input axes 0, 1, 2. The offsets must be closed under T (balls and
+    discs of lattice points are).
+    """
+    where = {tuple(o): k for k, o in enumerate(offsets.tolist())}
+    n = len(offsets)
+    smap = np.zeros((48, n), dtype=np.int64)
+    perm = np.zeros((48, 3), dtype=np.int64)
+    sign = np.zeros((48, 3))
+    for p, pp in enumerate(_PERMS):
+        for bits in range(8):
+            t = 8 * p + bits
+            flip = np.array([-1 if bits >> k & 1 else 1 for k in range(3)])
+            perm[t] = pp
+            sign[t] = flip[list(pp)]
+            img = (offsets * flip)[:, list(pp)]
+            for c in range(n):
+                # A T that leaves the lattice ball (a planar grid's disc under a z swap) is never chosen.
+                smap[t, c] = where.get(tuple(img[c].tolist()), -1)
+    return smap, perm, sign
+
+
+@numba.njit(**_JIT)
+def _symmetry_code(sx, sy, sz, planar):
+    """The canonical frame's T (see _symmetry_tables) of a set whose offsets sum to (sx, sy, sz)."""
+    bits = (1 if sx < 0 else 0) + (2 if sy < 0 else 0) + (0 if planar or sz >= 0 else 4)
+    ax, ay, az = abs(sx), abs(sy), abs(sz)
+    if planar:
+        return 8 * (0 if ax >= ay else 2) + bits
+    # Axes by decreasing magnitude, ties by axis: the index of that order in _PERMS.
+    if ax >= ay:
+        if ay >= az:
+            p = 0  # x y z
+        elif ax >= az:
+            p = 1  # x z y
+        else:
+            p = 4  # z x y
+    else:
+        if ax >= az:
+            p = 2  # y x z
+        elif ay >= az:
+            p = 3  # y z x
+        else:
+            p = 5  # z y x
+    return 8 * p + bits
+
+
 @numba.njit(**_JIT)
 def _set_factor(slot, rd, order, kept, offs, planar, m, support, weight_kind, s_rows, s_vecs, s_lam, s_gn, s_ok,
                 s_rd, s_len, s_offs, gram, brow, bw, zw, ew):
@@ -1285,7 +1346,8 @@ def _set_solve(slot, kept, ab, m, s_rows, s_vecs, s_lam, s_gn, z, y, g, dl, use,
 def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt, nrm, dist, allowed, offs,
                      round_n, round_r, min_visible, kmax, image, neumann, planar, weight_kind, find_boundary, two_d,
                      nudge, grid_origin, s, dims, cstart, ccount, citems, pcentre, pradius, pparent, tri, fnormal,
-                     rmax, q_max, bstart, bcount, bitems, pwitness, faces, enormal, vnormal):
+                     rmax, q_max, bstart, bcount, bitems, pwitness, faces, enormal, vnormal, sym_map, sym_perm,
+                     sym_sign):
     n = cells.shape[0]
     m = 6 if planar else 10
     no = offs.shape[0]
@@ -1337,6 +1399,7 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
     bw = np.empty(m)
     zw = np.empty(m)
     ew = np.empty(m)
+    abc = np.empty(m)  # the boundary row in a set's canonical frame
     zv = np.empty(m)
     yv = np.empty(m)
     gv = np.empty(m)
@@ -1344,6 +1407,11 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
     use = np.empty(m, dtype=np.bool_)
     wrow = np.empty(kmax)
     bout = np.empty(1)
+    canon = np.empty(kmax, dtype=np.int64)  # a set's offsets in its canonical frame, in offset order
+    cmark = np.zeros(no, dtype=np.bool_)
+    crank = np.empty(no, dtype=np.int64)
+    v3 = np.empty(3)
+    n3 = np.empty(3)
     rd_used = 0
     nrounds = round_n.shape[0]
     s1, s2 = shape3[1], shape3[2]
@@ -1472,27 +1540,58 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
         for k in range(m):
             ab[k] = wb * brow[k]
         if not image and wb != 0.0 and kept > 0:
-            # A recurring neighbour set: reuse its factorisation (see _SET_COND_MAX).
-            hkey = _set_hash(rd_used, order, kept)
+            # A recurring neighbour set: reuse its factorisation (see _SET_COND_MAX), in the
+            # set's canonical frame (see _PERMS).
+            sx = sy = sz = 0
+            for q in range(kept):
+                c = order[q]
+                sx += offs[c, 0]
+                sy += offs[c, 1]
+                sz += offs[c, 2]
+            t = _symmetry_code(sx, sy, sz, planar)
+            for q in range(kept):
+                cmark[sym_map[t, order[q]]] = True
+            nv = 0
+            for c in range(n_off):
+                if cmark[c]:
+                    cmark[c] = False
+                    canon[nv] = c
+                    crank[c] = nv
+                    nv += 1
+            hkey = _set_hash(rd_used, canon, kept)
             slot = table[hkey] if hkey in table else -1
             if slot >= 0:
                 same = s_rd[slot] == rd_used and s_len[slot] == kept
                 for q in range(kept):
-                    same = same and s_offs[slot, q] == order[q]
+                    same = same and s_offs[slot, q] == canon[q]
                 if not same:
                     slot = -2  # a hash collision: solve this one by QR
             elif n_sets < set_cap:
                 slot = n_sets
                 n_sets += 1
                 table[hkey] = slot
-                _set_factor(slot, rd_used, order, kept, offs, planar, m, support, weight_kind, s_rows, s_vecs,
+                _set_factor(slot, rd_used, canon, kept, offs, planar, m, support, weight_kind, s_rows, s_vecs,
                             s_lam, s_gn, s_ok, s_rd, s_len, s_offs, gram, brow2, bw, zw, ew)
             if slot >= 0 and s_ok[slot]:
-                cnd, bval, done = _set_solve(slot, kept, ab, m, s_rows, s_vecs, s_lam, s_gn, zv, yv, gv, dl, use,
+                # The boundary row in the canonical frame: T applied to the point (and normal).
+                v3[0], v3[1], v3[2] = (bpt[i, 0] - cx) / h, (bpt[i, 1] - cy) / h, 0.0 if planar else (bpt[i, 2] - cz) / h
+                xt = sym_sign[t, 0] * v3[sym_perm[t, 0]]
+                yt = sym_sign[t, 1] * v3[sym_perm[t, 1]]
+                zt = sym_sign[t, 2] * v3[sym_perm[t, 2]]
+                if neumann:
+                    n3[0], n3[1], n3[2] = nrm[i, 0], nrm[i, 1], 0.0 if planar else nrm[i, 2]
+                    _normal_derivative_row(xt, yt, zt, sym_sign[t, 0] * n3[sym_perm[t, 0]],
+                                           sym_sign[t, 1] * n3[sym_perm[t, 1]], sym_sign[t, 2] * n3[sym_perm[t, 2]],
+                                           planar, brow2)
+                else:
+                    _basis_row(xt, yt, zt, planar, brow2)
+                for k in range(m):
+                    abc[k] = wb * brow2[k]
+                cnd, bval, done = _set_solve(slot, kept, abc, m, s_rows, s_vecs, s_lam, s_gn, zv, yv, gv, dl, use,
                                              wrow, bout)
                 if done:
                     for q in range(kept):
-                        wts[i, q] = wrow[q]
+                        wts[i, q] = wrow[crank[sym_map[t, order[q]]]]
                     wbnd[i] = bval * wb
                     cond[i] = cnd
                     by_set[i] = True
@@ -1626,15 +1725,19 @@ def stencil_fits(tags, shape3, lower3, h, cells, anchor, origin, centre, allowed
         q_max = int(max(index.dims)) + int(np.max(np.abs(qb - np.clip(qb, 0, dims - 1)))) + 1
     else:
         q_max = 0
+    offs = offsets[: round_n[-1]]
+    sym_map, sym_perm, sym_sign = _symmetry_tables(offs)
+    if not planar and (sym_map < 0).any():
+        raise ValueError("stencil offsets must be closed under the cube's symmetries (a ball of lattice points)")
     out = _stencils_kernel(
         np.ascontiguousarray(tags, dtype=np.uint8), np.asarray(shape3, dtype=np.int64), f64(lower3), float(h),
         np.ascontiguousarray(cells, dtype=np.int64), np.ascontiguousarray(anchor, dtype=np.int64), origin,
-        f64(centre), bpt, nrm, dist, np.asarray(allowed, dtype=bool), offsets[: round_n[-1]], round_n, radii,
+        f64(centre), bpt, nrm, dist, np.asarray(allowed, dtype=bool), offs, round_n, radii,
         int(min_visible), int(kmax), bool(image), bool(neumann), bool(planar), _WEIGHT_CODES[weight], find,
         bool(two_d), float(nudge), np.asarray(index.origin, dtype=float), float(index.bucket_size), dims,
         index.centre_start, index.centre_count, index.centre_items, index.piece_centre, index.piece_radius,
         index.piece_parent, index.tri, index.face_normal, float(index.piece_radius.max(initial=0.0)), q_max,
         index.bucket_start, index.bucket_count, index.bucket_items, index.piece_witness, index.faces,
-        index.edge_normal, index.vertex_normal,
+        index.edge_normal, index.vertex_normal, sym_map, sym_perm, sym_sign,
     )
     return (*out, bpt, nrm, dist, origin)

@@ -466,3 +466,31 @@ def test_compiled_stencil_pass_equals_array_pipeline(monkeypatch, case):
     np.testing.assert_array_equal(np.isfinite(fast.condition), finite)
     np.testing.assert_allclose(fast.condition[finite], ref.condition[finite], rtol=WLS_COND_RTOL)
     np.testing.assert_allclose(fast.weight_bound[finite], ref.weight_bound[finite], rtol=1e-11)
+
+
+@pytest.mark.parametrize("planar", [False, True])
+def test_symmetry_frames_of_neighbour_sets(planar):
+    # Reference: the definition of the canonical frame (kernels._PERMS): T maps offset o to
+    # (sign_j * o[perm_j])_j, and the frame chosen for a set makes its offset sum non-negative
+    # and non-increasing along the axes (common practice for canonical forms, no single source).
+    from ibprep.stencils import _offsets
+
+    offs = _offsets(3.5, planar)
+    smap, perm, sign = kernels._symmetry_tables(offs)
+    rng = np.random.default_rng(5)
+    for _ in range(300):
+        ssum = rng.integers(-6, 7, 3)
+        if planar:
+            ssum[2] = 0
+        t = kernels._symmetry_code(int(ssum[0]), int(ssum[1]), int(ssum[2]), planar)
+        img = sign[t] * ssum[perm[t]]
+        assert (img >= 0).all(), (ssum, img)
+        if planar:
+            assert img[0] >= img[1] and img[2] == 0 and perm[t, 2] == 2
+        else:
+            assert img[0] >= img[1] >= img[2]
+        assert (smap[t] >= 0).all()  # the offset ball is closed under the chosen T
+        np.testing.assert_array_equal(offs[smap[t]], sign[t] * offs[:, perm[t]])
+        # T is a bijection of the offsets and keeps lengths (the rounds and the weights).
+        assert np.unique(smap[t]).size == len(offs)
+        np.testing.assert_array_equal((offs[smap[t]] ** 2).sum(1), (offs**2).sum(1))
