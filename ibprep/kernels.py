@@ -108,30 +108,32 @@ def _gather(ox, oy, oz, reach, grid_origin, s, dims, cstart, ccount, citems, pce
     m = 0
     for bx in range(lo[0], hi[0] + 1):
         for by in range(lo[1], hi[1] + 1):
-            for bz in range(lo[2], hi[2] + 1):
-                flat = (bx * dims[1] + by) * dims[2] + bz
-                for pos in range(cstart[flat], cstart[flat] + ccount[flat]):
-                    t = citems[pos]
-                    dcx, dcy, dcz = ox - pcentre[t, 0], oy - pcentre[t, 1], oz - pcentre[t, 2]
-                    rr = reach + pradius[t]
-                    if not (_dot3(dcx, dcy, dcz, dcx, dcy, dcz) <= rr * rr):
-                        continue
-                    f = pparent[t]
-                    l_face[m] = f
-                    l_so[m] = _dot3(ox - tri[f, 0, 0], oy - tri[f, 0, 1], oz - tri[f, 0, 2],
-                                    fnormal[f, 0], fnormal[f, 1], fnormal[f, 2])
-                    cx = pcentre[t, 0] - ox
-                    cy = pcentre[t, 1] - oy
-                    cz = pcentre[t, 2] - oz
-                    l_cx[m] = cx
-                    l_cy[m] = cy
-                    l_cz[m] = cz
-                    l_cc[m] = _dot3(cx, cy, cz, cx, cy, cz)
-                    l_r2[m] = pradius[t] * pradius[t] * (1 + 1e-9)
-                    # Half-width of the box prefilter: the radius plus a margin far above the
-                    # round-off of the sphere screen below (~1e-8 (reach + radius)).
-                    l_box[m] = pradius[t] + 1e-6 * (pradius[t] + reach)
-                    m += 1
+            # Pieces are listed bucket after bucket in flat order: those of a run of buckets
+            # along z are one contiguous range (no loop over short, mostly empty buckets).
+            row = (bx * dims[1] + by) * dims[2]
+            last = row + hi[2]
+            for pos in range(cstart[row + lo[2]], cstart[last] + ccount[last]):
+                t = citems[pos]
+                dcx, dcy, dcz = ox - pcentre[t, 0], oy - pcentre[t, 1], oz - pcentre[t, 2]
+                rr = reach + pradius[t]
+                if not (_dot3(dcx, dcy, dcz, dcx, dcy, dcz) <= rr * rr):
+                    continue
+                f = pparent[t]
+                l_face[m] = f
+                l_so[m] = _dot3(ox - tri[f, 0, 0], oy - tri[f, 0, 1], oz - tri[f, 0, 2],
+                                fnormal[f, 0], fnormal[f, 1], fnormal[f, 2])
+                cx = pcentre[t, 0] - ox
+                cy = pcentre[t, 1] - oy
+                cz = pcentre[t, 2] - oz
+                l_cx[m] = cx
+                l_cy[m] = cy
+                l_cz[m] = cz
+                l_cc[m] = _dot3(cx, cy, cz, cx, cy, cz)
+                l_r2[m] = pradius[t] * pradius[t] * (1 + 1e-9)
+                # Half-width of the box prefilter: the radius plus a margin far above the
+                # round-off of the sphere screen below (~1e-8 (reach + radius)).
+                l_box[m] = pradius[t] + 1e-6 * (pradius[t] + reach)
+                m += 1
     return m
 
 
