@@ -114,26 +114,31 @@ def _gather(ox, oy, oz, reach, grid_origin, s, dims, cstart, ccount, citems, pce
             last = row + hi[2]
             for pos in range(cstart[row + lo[2]], cstart[last] + ccount[last]):
                 t = citems[pos]
-                dcx, dcy, dcz = ox - pcentre[t, 0], oy - pcentre[t, 1], oz - pcentre[t, 2]
-                rr = reach + pradius[t]
-                if not (_dot3(dcx, dcy, dcz, dcx, dcy, dcz) <= rr * rr):
-                    continue
-                f = pparent[t]
-                l_face[m] = f
-                l_so[m] = _dot3(ox - tri[f, 0, 0], oy - tri[f, 0, 1], oz - tri[f, 0, 2],
-                                fnormal[f, 0], fnormal[f, 1], fnormal[f, 2])
                 cx = pcentre[t, 0] - ox
                 cy = pcentre[t, 1] - oy
                 cz = pcentre[t, 2] - oz
+                cc = _dot3(cx, cy, cz, cx, cy, cz)
+                pr = pradius[t]
+                rr = reach + pr
+                # Written unconditionally, kept if the sphere is within reach (no branch to mispredict).
+                l_face[m] = t
                 l_cx[m] = cx
                 l_cy[m] = cy
                 l_cz[m] = cz
-                l_cc[m] = _dot3(cx, cy, cz, cx, cy, cz)
-                l_r2[m] = pradius[t] * pradius[t] * (1 + 1e-9)
-                # Half-width of the box prefilter: the radius plus a margin far above the
-                # round-off of the sphere screen below (~1e-8 (reach + radius)).
-                l_box[m] = pradius[t] + 1e-6 * (pradius[t] + reach)
-                m += 1
+                l_cc[m] = cc
+                l_r2[m] = pr
+                m += 1 if cc <= rr * rr else 0
+    for k in range(m):
+        t = l_face[k]
+        f = pparent[t]
+        l_face[k] = f
+        pr = l_r2[k]
+        l_so[k] = _dot3(ox - tri[f, 0, 0], oy - tri[f, 0, 1], oz - tri[f, 0, 2],
+                        fnormal[f, 0], fnormal[f, 1], fnormal[f, 2])
+        l_r2[k] = pr * pr * (1 + 1e-9)
+        # Half-width of the box prefilter: the radius plus a margin far above the
+        # round-off of the sphere screen below (~1e-8 (reach + radius)).
+        l_box[k] = pr + 1e-6 * (pr + reach)
     return m
 
 
