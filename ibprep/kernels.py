@@ -1221,25 +1221,36 @@ def _symmetry_tables(offsets):
     """(48, no) index of T(offsets[c]) in offsets, (48, 3) axis taken and (48, 3) sign, per T.
 
     T has code 8 p + signs: output axis j is sign[j] * input axis _PERMS[p][j]; the
-    sign bits flip input axes 0, 1, 2. The offsets must be closed under T (balls and
-    discs of lattice points are).
+    sign bits flip input axes 0, 1, 2. A T that takes an offset out of the set
+    (a planar grid's disc under an exchange with z) maps it to -1 and is never
+    chosen; balls of lattice points are closed under all 48. Read-only tables,
+    kept per offset set (they depend on nothing else).
     """
-    where = {tuple(o): k for k, o in enumerate(offsets.tolist())}
-    n = len(offsets)
-    smap = np.zeros((48, n), dtype=np.int64)
-    perm = np.zeros((48, 3), dtype=np.int64)
-    sign = np.zeros((48, 3))
-    for p, pp in enumerate(_PERMS):
-        for bits in range(8):
-            t = 8 * p + bits
-            flip = np.array([-1 if bits >> k & 1 else 1 for k in range(3)])
-            perm[t] = pp
-            sign[t] = flip[list(pp)]
-            img = (offsets * flip)[:, list(pp)]
-            for c in range(n):
-                # A T that leaves the lattice ball (a planar grid's disc under a z swap) is never chosen.
-                smap[t, c] = where.get(tuple(img[c].tolist()), -1)
-    return smap, perm, sign
+    offsets = np.ascontiguousarray(offsets, dtype=np.int64)
+    key = (offsets.shape, offsets.tobytes())
+    found = _SYMMETRY_TABLES.get(key)
+    if found is None:
+        r = int(np.abs(offsets).max(initial=0))
+        where = np.full((2 * r + 1,) * 3, -1, dtype=np.int64)  # offset -> its index, over the cube of side 2r + 1
+        where[tuple((offsets + r).T)] = np.arange(len(offsets))
+        smap = np.empty((48, len(offsets)), dtype=np.int64)
+        perm = np.empty((48, 3), dtype=np.int64)
+        sign = np.empty((48, 3))
+        for p, pp in enumerate(_PERMS):
+            for bits in range(8):
+                t = 8 * p + bits
+                flip = np.array([-1 if bits >> k & 1 else 1 for k in range(3)])
+                perm[t] = pp
+                sign[t] = flip[list(pp)]
+                img = (offsets * flip)[:, list(pp)]
+                smap[t] = where[tuple((img + r).T)]
+        for a in (smap, perm, sign):
+            a.flags.writeable = False
+        found = _SYMMETRY_TABLES[key] = (smap, perm, sign)
+    return found
+
+
+_SYMMETRY_TABLES: dict = {}
 
 
 @numba.njit(**_JIT)
