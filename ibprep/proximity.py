@@ -687,6 +687,11 @@ class TriangleIndex:
     check_orientation : bool — flip the normals if the signed volume is negative
         (default); pass False for an open surface already oriented outward.
 
+    The lists by centre (``centre_start``, ``centre_count``, ``centre_items``) hold
+    each piece once, bucket after bucket in flat (C) order: a run of buckets along
+    the last axis is one contiguous range of ``centre_items`` (the stencil pass's
+    gather walks them so).
+
     Raises
     ------
     InputError

@@ -143,6 +143,10 @@ def test_compiled_index_tables_equal_the_numpy_construction(case, monkeypatch):
         got, ref = getattr(built[True], name), getattr(built[False], name)
         assert got.dtype == ref.dtype, name
         np.testing.assert_array_equal(got, ref, err_msg=name)
+    # The centre lists are contiguous in flat bucket order (kernels._gather walks runs of buckets as one range).
+    idx = built[True]
+    np.testing.assert_array_equal(idx.centre_start[1:], idx.centre_start[:-1] + idx.centre_count[:-1])
+    assert idx.centre_start[0] == 0 and idx.centre_start[-1] + idx.centre_count[-1] == idx.centre_items.size
     for name in ("tri", "face_normal", "edge_normal"):
         np.testing.assert_array_equal(getattr(built[True], name), getattr(built[False], name), err_msg=name)
     np.testing.assert_allclose(built[True].vertex_normal, built[False].vertex_normal, rtol=0, atol=1e-15)
