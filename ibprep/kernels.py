@@ -1441,13 +1441,17 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
         ai, aj, ak = anchor[i, 0], anchor[i, 1], anchor[i, 2]
         ox, oy, oz = origin[i, 0], origin[i, 1], origin[i, 2]
         # Candidates round by round (offsets sorted by length; each round tests only its new ones).
+        # A round whose candidates could not bring the count to min_visible even if all were
+        # visible cannot be the last: its candidates are tested together with the next round's
+        # (one gather and one fan test instead of two; the same visible set and stopping round).
         n_old = 0
         count = 0
         n_off = 0
+        nc = 0
+        longest = 0.0
+        bnd_done = not find_boundary
         for rd in range(nrounds):
             n_off = round_n[rd]
-            nc = 0
-            longest = 0.0
             for c in range(n_old, n_off):
                 cvis[c] = False
                 ci, cj, ck = ai + offs[c, 0], aj + offs[c, 1], ak + offs[c, 2]
@@ -1468,8 +1472,12 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
                 dx, dy, dz = x - ox, yy - oy, z - oz
                 longest = max(longest, dx * dx + dy * dy + dz * dz)
                 nc += 1
-            if rd == 0 and find_boundary:
-                # The boundary point from the pieces gathered for the first round's segments.
+            n_old = n_off
+            if count + nc < min_visible and rd < nrounds - 1:
+                continue
+            if not bnd_done:
+                bnd_done = True
+                # The boundary point from the pieces gathered for the first tested segments.
                 reach = math.sqrt(longest) * (1 + 1e-9)
                 mg = _gather(ox, oy, oz, reach, grid_origin, s, dims, cstart, ccount, citems, pcentre, pradius,
                              pparent, tri, fnormal, rmax, lo, hi, l_face, l_cx, l_cy, l_cz, l_box, l_so, l_cc, l_r2)
@@ -1509,7 +1517,8 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
                     if not hit[jj]:
                         cvis[cidx[jj]] = True
                         count += 1
-            n_old = n_off
+            nc = 0
+            longest = 0.0
             if count >= min_visible or rd == nrounds - 1:
                 used_r[i] = round_r[rd]
                 rd_used = rd
