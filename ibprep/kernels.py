@@ -39,8 +39,6 @@ import math
 
 import numba
 import numpy as np
-from numba import types
-from numba.typed import Dict
 
 from .proximity import ClosestPoints, _closest_on_triangle, _dot3  # noqa: F401 (_dot3 used by kernels below)
 
@@ -1400,10 +1398,16 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
     brow = np.empty(m)
     brow2 = np.empty(m)
     ab = np.empty(m)
-    # Factorised neighbour sets (see _SET_COND_MAX): hash -> slot.
-    table = Dict.empty(key_type=types.int64, value_type=types.int64)
     # At most 8192 sets and about 160 MB of rows; none for the image point (never cell-centred).
     set_cap = 0 if image else min(n, 8192, max(1, 20_000_000 // (kmax * m)))
+    # Factorised neighbour sets (see _SET_COND_MAX): hash -> slot, open addressing with linear
+    # probing in a table at most half full (keys are non-negative; -1 marks a free entry).
+    t_size = 1
+    while t_size < 2 * set_cap:
+        t_size *= 2
+    t_mask = t_size - 1
+    t_keys = np.full(t_size, -1, dtype=np.int64)
+    t_vals = np.empty(t_size, dtype=np.int64)
     n_sets = 0
     s_rows = np.empty((set_cap, kmax, m))
     s_vecs = np.empty((set_cap, m, m))
@@ -1586,7 +1590,10 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
                     crank[c] = nv
                     nv += 1
             hkey = _set_hash(rd_used, canon, kept)
-            slot = table[hkey] if hkey in table else -1
+            tp = hkey & t_mask
+            while t_keys[tp] != -1 and t_keys[tp] != hkey:
+                tp = (tp + 1) & t_mask
+            slot = t_vals[tp] if t_keys[tp] == hkey else -1
             if slot >= 0:
                 same = s_rd[slot] == rd_used and s_len[slot] == kept
                 for q in range(kept):
@@ -1596,7 +1603,8 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
             elif n_sets < set_cap:
                 slot = n_sets
                 n_sets += 1
-                table[hkey] = slot
+                t_keys[tp] = hkey
+                t_vals[tp] = slot
                 _set_factor(slot, rd_used, canon, kept, offs, planar, m, support, weight_kind, s_rows, s_vecs,
                             s_lam, s_gn, s_ok, s_rd, s_len, s_offs, gram, brow2, bw, zw, ew)
             if slot >= 0 and s_ok[slot]:
