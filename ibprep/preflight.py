@@ -133,25 +133,39 @@ def _verdict(checks) -> str:
     return STATUSES[worst]
 
 
-def _qty(value, unit) -> str:
-    return f"{value:.3g} {unit}" if unit else f"{value:.3g}"
+def _near(value, limit) -> str:
+    """value to 3 significant digits, or more where fewer would print the limit it was compared with."""
+    for digits in range(3, 10):
+        text = f"{value:.{digits}g}"
+        if value == limit or float(text) != limit:
+            return text
+    return repr(float(value))
+
+
+def _qty(value, unit, limit=None) -> str:
+    text = f"{value:.3g}" if limit is None else _near(value, limit)
+    return f"{text} {unit}" if unit else text
 
 
 def _below(id_, value, warn, fail, unit, what, hint) -> Check:
     """A check where small is bad: fail below ``fail``, warn below ``warn``."""
     if value < fail:
-        return Check(id_, "fail", value, fail, unit, f"{what}: {_qty(value, unit)}, below the minimum {fail:g}", hint)
+        return Check(id_, "fail", value, fail, unit,
+                     f"{what}: {_qty(value, unit, fail)}, below the minimum {fail:g}", hint)
     if value < warn:
-        return Check(id_, "warn", value, warn, unit, f"{what}: {_qty(value, unit)}, below the advised {warn:g}", hint)
+        return Check(id_, "warn", value, warn, unit,
+                     f"{what}: {_qty(value, unit, warn)}, below the advised {warn:g}", hint)
     return Check(id_, "pass", value, warn, unit, f"{what}: {_qty(value, unit)}")
 
 
 def _above(id_, value, warn, fail, unit, what, hint) -> Check:
     """A check where large is bad: fail above ``fail``, warn above ``warn``."""
     if value > fail:
-        return Check(id_, "fail", value, fail, unit, f"{what}: {_qty(value, unit)}, above the maximum {fail:g}", hint)
+        return Check(id_, "fail", value, fail, unit,
+                     f"{what}: {_qty(value, unit, fail)}, above the maximum {fail:g}", hint)
     if value > warn:
-        return Check(id_, "warn", value, warn, unit, f"{what}: {_qty(value, unit)}, above the advised {warn:g}", hint)
+        return Check(id_, "warn", value, warn, unit,
+                     f"{what}: {_qty(value, unit, warn)}, above the advised {warn:g}", hint)
     return Check(id_, "pass", value, warn, unit, f"{what}: {_qty(value, unit)}")
 
 
@@ -265,7 +279,7 @@ def _domain_checks(case: Case, env, figures: dict) -> list[Check]:
             continue
         if value < limit:
             out.append(Check(id_, "warn", value, limit, "chords",
-                             f"{what}: {value:.3g} chords, below the common-practice {limit:g}",
+                             f"{what}: {_near(value, limit)} chords, below the common-practice {limit:g}",
                              f"move the {face} face(s) out if blockage or inflow/outflow conditions matter"))
         else:
             out.append(Check(id_, "pass", value, limit, "chords", f"{what}: {value:.3g} chords"))

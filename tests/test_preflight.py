@@ -127,3 +127,15 @@ def test_tandem_pair_too_close_fails_the_gap_check():
     gap = _by_id(rep)["resolution.gap"]
     assert gap.status == "fail" and gap.value < 2
     assert rep.verdict == "fail"
+
+
+def test_a_value_just_past_its_limit_never_prints_as_the_limit():
+    # A warning that read "1.99 -> '2' chords, below the common-practice 2" contradicted itself.
+    from ibprep.preflight import _above, _near
+
+    assert _near(1.9987, 2.0) == "1.999"
+    assert _near(4.99996, 5.0) == "4.99996"
+    assert _near(1.8, 2.0) == "1.8"
+    assert _near(2.0, 2.0) == "2"
+    chk = _above("time.cfl", 1.0004, 0.8, 1.0, "", "Courant number", "reduce the time step")
+    assert chk.status == "fail" and "1.0004, above the maximum 1" in chk.message
