@@ -1762,8 +1762,10 @@ def stencil_fits(tags, shape3, lower3, h, cells, anchor, origin, centre, allowed
         q_max = 0
     offs = offsets[: round_n[-1]]
     sym_map, sym_perm, sym_sign = _symmetry_tables(offs)
-    if not planar and (sym_map < 0).any():
-        raise ValueError("stencil offsets must be closed under the cube's symmetries (a ball of lattice points)")
+    # The frames _symmetry_code can choose: all 48, or on planar grids the 8 that keep z.
+    usable = sym_map if not planar else sym_map[[8 * p + b for p in (0, 2) for b in range(4)]]
+    if (usable < 0).any():
+        raise ValueError("stencil offsets must be closed under the grid's lattice symmetries (a ball or disc)")
     out = _stencils_kernel(
         np.ascontiguousarray(tags, dtype=np.uint8), np.asarray(shape3, dtype=np.int64), f64(lower3), float(h),
         np.ascontiguousarray(cells, dtype=np.int64), np.ascontiguousarray(anchor, dtype=np.int64), origin,

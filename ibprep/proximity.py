@@ -546,6 +546,21 @@ def _surface_tables_numpy(v, f, check_orientation):
 
 
 @numba.njit(**_JIT)
+def _counting_order(key, order, n):
+    """``order`` stably re-sorted by ``key[order]`` (integers in [0, n)): a counting sort."""
+    count = np.zeros(n + 1, np.int64)
+    for e in order:
+        count[key[e] + 1] += 1
+    for q in range(n):
+        count[q + 1] += count[q]
+    out = np.empty(order.size, np.int64)
+    for e in order:
+        out[count[key[e]]] = e
+        count[key[e]] += 1
+    return out
+
+
+@numba.njit(**_JIT)
 def _surface_tables_nb(v, f, check_orientation):
     """:func:`_surface_tables_numpy` in one compiled pass (equal to round-off)."""
     nf = f.shape[0]
@@ -591,37 +606,27 @@ def _surface_tables_nb(v, f, check_orientation):
         ln = max(math.sqrt(vn[q, 0] * vn[q, 0] + vn[q, 1] * vn[q, 1] + vn[q, 2] * vn[q, 2]), 1e-300)
         for k in range(3):
             vn[q, k] /= ln
-    # Edge pseudo-normals: the sum of the normals of the faces sharing the edge. Edges
-    # grouped by their lower vertex (counting sort), then matched by the upper one.
+    # Edge pseudo-normals: the sum of the normals of the faces sharing the edge. Edges are
+    # sorted by (lower, upper) vertex with two stable counting sorts (upper, then lower), so
+    # an edge's copies are one run, in face order; linear in the edges whatever the degrees.
     ne = 3 * nf
     elo = np.empty(ne, np.int64)
     ehi = np.empty(ne, np.int64)
-    count = np.zeros(nv + 1, np.int64)
     for t in range(nf):
         for c in range(3):
             a, b = f[t, c], f[t, (c + 1) % 3]
             e = 3 * t + c
             elo[e], ehi[e] = min(a, b), max(a, b)
-            count[elo[e] + 1] += 1
-    for q in range(nv):
-        count[q + 1] += count[q]
-    fill = count[:nv].copy()
-    byv = np.empty(ne, np.int64)
-    for e in range(ne):
-        byv[fill[elo[e]]] = e
-        fill[elo[e]] += 1
-    group = np.full(ne, -1, np.int64)  # first edge (in face order) of each edge's group
+    by_hi = _counting_order(ehi, np.arange(ne), nv)
+    by_both = _counting_order(elo, by_hi, nv)
+    group = np.empty(ne, np.int64)  # first edge (in face order) of each edge's run
+    first = -1
+    for p in range(ne):
+        e = by_both[p]
+        if p == 0 or elo[e] != elo[first] or ehi[e] != ehi[first]:
+            first = e
+        group[e] = first
     esum = np.zeros((ne, 3))
-    for q in range(nv):
-        for p in range(count[q], count[q + 1]):
-            e = byv[p]
-            if group[e] >= 0:
-                continue
-            group[e] = e
-            for p2 in range(p + 1, count[q + 1]):
-                e2 = byv[p2]
-                if group[e2] < 0 and ehi[e2] == ehi[e]:
-                    group[e2] = e
     for e in range(ne):  # face order, as the numpy reference's bincount sums
         g = group[e]
         t = e // 3
@@ -648,10 +653,24 @@ def _edge_lengths_nb(v, f):
     return out
 
 
-def median_edge_length(vertices, faces) -> float:
-    """Median edge length of a triangle surface, metres (each shared edge counted per face)."""
+def _checked_arrays(vertices, faces):
+    """(nv, 3) float and (nf, 3) int64 contiguous arrays, faces indexing existing vertices.
+
+    Raises InputError otherwise (the compiled kernels index without bounds checks).
+    """
     v = np.ascontiguousarray(vertices, dtype=float)
     f = np.ascontiguousarray(faces, dtype=np.int64)
+    if v.ndim != 2 or v.shape[1] != 3 or f.ndim != 2 or f.shape[1] != 3 or f.shape[0] == 0:
+        raise InputError(f"a triangle surface needs (n, 3) vertices and (m, 3) faces, got {v.shape} and {f.shape}")
+    if f.min() < 0 or f.max() >= v.shape[0]:
+        raise InputError(f"face vertex indices must lie in 0..{v.shape[0] - 1} (there are {v.shape[0]} vertices), "
+                         f"got {int(f.min())}..{int(f.max())}")
+    return v, f
+
+
+def median_edge_length(vertices, faces) -> float:
+    """Median edge length of a triangle surface, metres (each shared edge counted per face)."""
+    v, f = _checked_arrays(vertices, faces)
     return float(np.median(_edge_lengths_nb(v, f)))
 
 
@@ -723,10 +742,7 @@ class TriangleIndex:
     centre_items: np.ndarray = field(init=False, repr=False)
 
     def __post_init__(self) -> None:
-        v = np.ascontiguousarray(self.vertices, dtype=float)
-        f = np.ascontiguousarray(self.faces, dtype=np.int64)
-        if v.ndim != 2 or v.shape[1] != 3 or f.ndim != 2 or f.shape[1] != 3 or f.shape[0] == 0:
-            raise InputError(f"a triangle index needs (n, 3) vertices and (m, 3) faces, got {v.shape} and {f.shape}")
+        v, f = _checked_arrays(self.vertices, self.faces)
         s = float(self.bucket_size)
         if not (math.isfinite(s) and s > 0):
             raise InputError(f"bucket_size must be a positive length in metres, got {self.bucket_size!r}")

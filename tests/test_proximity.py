@@ -208,3 +208,37 @@ def test_fan_crossing_agrees_with_plain_crossing():
     plain = idx.segments_cross(np.repeat(o, 7, axis=0), ends.reshape(-1, 3)).reshape(200, 7) & valid
     np.testing.assert_array_equal(fan, plain)
     assert plain.sum() > 20
+
+
+@pytest.mark.parametrize("bad", [-1, 10_000])
+def test_face_indices_out_of_range_are_refused(bad):
+    # The compiled surface kernels index without bounds checks: bad faces must be refused first.
+    from ibprep.proximity import median_edge_length
+
+    m = trimesh.creation.icosphere(subdivisions=1)
+    f = m.faces.copy()
+    f[3, 1] = bad
+    with pytest.raises(InputError, match="face vertex indices"):
+        TriangleIndex(m.vertices, f, bucket_size=0.3)
+    with pytest.raises(InputError, match="face vertex indices"):
+        median_edge_length(m.vertices, f)
+
+
+def test_surface_tables_at_a_vertex_of_high_degree(monkeypatch):
+    # A closed double cone whose two apexes each touch 3000 faces (fan caps of a fine
+    # cylinder look alike). Reference: the numpy construction (_surface_tables_numpy);
+    # the edge grouping must stay exact (and linear: it is a pair of counting sorts).
+    from ibprep import proximity
+
+    n = 3000
+    a = np.linspace(0, 2 * np.pi, n, endpoint=False)
+    ring = np.column_stack([np.cos(a), np.sin(a), np.zeros(n)])
+    v = np.vstack([ring, [[0, 0, 1.0], [0, 0, -1.0]]])
+    k = np.arange(n)
+    f = np.vstack([np.column_stack([k, (k + 1) % n, np.full(n, n)]),
+                   np.column_stack([(k + 1) % n, k, np.full(n, n + 1)])])
+    got = proximity._surface_tables_compiled(v, f.astype(np.int64), True)
+    ref = proximity._surface_tables_numpy(v, f.astype(np.int64), True)
+    for name, g, r in zip(("tri", "fn", "en", "vn", "lo", "hi"), got, ref):
+        np.testing.assert_allclose(g, r, rtol=0, atol=1e-12, err_msg=name)
+    np.testing.assert_allclose(got[3][n], [0, 0, 1.0], atol=1e-12)  # the apex's pseudo-normal points up
