@@ -133,11 +133,18 @@ def _verdict(checks) -> str:
     return STATUSES[worst]
 
 
+def _lim(limit) -> str:
+    """A limit as printed in messages: up to 12 significant digits (2, 0.5, 1.2342, 2.00000005)."""
+    return f"{limit:.12g}"
+
+
 def _near(value, limit) -> str:
-    """value to 3 significant digits, or more where fewer would print the limit it was compared with."""
-    for digits in range(3, 10):
+    """value to 3 significant digits, or more where fewer would not print it on its side of the printed limit."""
+    shown = float(_lim(limit))
+    for digits in range(3, 18):
         text = f"{value:.{digits}g}"
-        if value == limit or float(text) != limit:
+        v = float(text)
+        if (v > shown) == (value > limit) and (v < shown) == (value < limit):
             return text
     return repr(float(value))
 
@@ -151,10 +158,10 @@ def _below(id_, value, warn, fail, unit, what, hint) -> Check:
     """A check where small is bad: fail below ``fail``, warn below ``warn``."""
     if value < fail:
         return Check(id_, "fail", value, fail, unit,
-                     f"{what}: {_qty(value, unit, fail)}, below the minimum {fail:g}", hint)
+                     f"{what}: {_qty(value, unit, fail)}, below the minimum {_lim(fail)}", hint)
     if value < warn:
         return Check(id_, "warn", value, warn, unit,
-                     f"{what}: {_qty(value, unit, warn)}, below the advised {warn:g}", hint)
+                     f"{what}: {_qty(value, unit, warn)}, below the advised {_lim(warn)}", hint)
     return Check(id_, "pass", value, warn, unit, f"{what}: {_qty(value, unit)}")
 
 
@@ -162,10 +169,10 @@ def _above(id_, value, warn, fail, unit, what, hint) -> Check:
     """A check where large is bad: fail above ``fail``, warn above ``warn``."""
     if value > fail:
         return Check(id_, "fail", value, fail, unit,
-                     f"{what}: {_qty(value, unit, fail)}, above the maximum {fail:g}", hint)
+                     f"{what}: {_qty(value, unit, fail)}, above the maximum {_lim(fail)}", hint)
     if value > warn:
         return Check(id_, "warn", value, warn, unit,
-                     f"{what}: {_qty(value, unit, warn)}, above the advised {warn:g}", hint)
+                     f"{what}: {_qty(value, unit, warn)}, above the advised {_lim(warn)}", hint)
     return Check(id_, "pass", value, warn, unit, f"{what}: {_qty(value, unit)}")
 
 
@@ -279,7 +286,7 @@ def _domain_checks(case: Case, env, figures: dict) -> list[Check]:
             continue
         if value < limit:
             out.append(Check(id_, "warn", value, limit, "chords",
-                             f"{what}: {_near(value, limit)} chords, below the common-practice {limit:g}",
+                             f"{what}: {_near(value, limit)} chords, below the common-practice {_lim(limit)}",
                              f"move the {face} face(s) out if blockage or inflow/outflow conditions matter"))
         else:
             out.append(Check(id_, "pass", value, limit, "chords", f"{what}: {value:.3g} chords"))

@@ -131,7 +131,7 @@ def test_tandem_pair_too_close_fails_the_gap_check():
 
 def test_a_value_just_past_its_limit_never_prints_as_the_limit():
     # A warning that read "1.99 -> '2' chords, below the common-practice 2" contradicted itself.
-    from ibprep.preflight import _above, _near
+    from ibprep.preflight import _above, _below, _near
 
     assert _near(1.9987, 2.0) == "1.999"
     assert _near(4.99996, 5.0) == "4.99996"
@@ -139,3 +139,7 @@ def test_a_value_just_past_its_limit_never_prints_as_the_limit():
     assert _near(2.0, 2.0) == "2"
     chk = _above("time.cfl", 1.0004, 0.8, 1.0, "", "Courant number", "reduce the time step")
     assert chk.status == "fail" and "1.0004, above the maximum 1" in chk.message
+    # Limits a user set with more digits: the value stays on its side of the limit as printed.
+    assert "1.2344, above the maximum 1.2342" in _above("c", 1.2344, 0.5, 1.2342, "", "Courant number", "").message
+    assert "1.23 cells, below the advised 1.2345" in _below("g", 1.2341, 1.2345, 0.1, "cells", "Cells", "").message
+    assert "2.0000001, above the maximum 2.00000005" in _above("c", 2.0000001, 0.5, 2.00000005, "", "C", "").message
