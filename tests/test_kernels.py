@@ -8,6 +8,7 @@ equal; floats equal bit for bit where the kernel reproduces the numpy expression
 order, else within the named tolerances below.
 """
 
+import igl
 import numpy as np
 import pytest
 import trimesh
@@ -425,6 +426,32 @@ def _fit_cases():
     slot = ((x1 > -0.5) & (x1 < 0.0) | (x1 > 0.125) & (x1 < 0.625)) & np.all(np.abs(c1[..., 1:]) < 0.5, axis=-1)
     yield "slot ties", _tagged(slot, False), g1, two, {}
     yield "slot no candidates", _tagged(slot, False), g1, two, dict(interface_neighbours=False, radius=1.0, max_radius=2.0)
+    # Seeded random bodies and options: rotated, shifted ellipsoids (3-D) and ellipses (2-D),
+    # 4 to 8 cells across their semi-axes, either interface side, either condition, any weight.
+    from scipy.spatial.transform import Rotation
+
+    for seed in range(6):
+        rng = np.random.default_rng(100 + seed)
+        kw = dict(bc=str(rng.choice(["dirichlet", "neumann"])),
+                  weight=str(rng.choice(["gaussian", "inverse-distance", "wendland"])))
+        ghost = bool(rng.integers(2))
+        if ghost:
+            kw.update(interface="solid-side", method=str(rng.choice(["direct", "image-point"])))
+        axes = rng.uniform(0.5, 1.0, 3)
+        if seed < 4:
+            e = trimesh.creation.icosphere(subdivisions=3, radius=1.0)
+            rot = Rotation.from_rotvec(rng.normal(size=3))
+            shift = rng.uniform(-0.5, 0.5, 3) * h
+            v = rot.apply(e.vertices * axes) + shift
+            solid = np.abs(igl.winding_number(v, e.faces.astype(np.int64), g3.centres().reshape(-1, 3))) > 0.5
+            yield f"random ellipsoid {seed} {kw}", _tagged(solid.reshape(g3.shape), ghost), g3, (v, e.faces), kw
+        else:
+            ang = rng.uniform(0, np.pi)
+            rot2 = np.array([[np.cos(ang), -np.sin(ang)], [np.sin(ang), np.cos(ang)]])
+            loop = np.column_stack([axes[0] * np.cos(th), axes[1] * np.sin(th)]) @ rot2.T
+            q = c2 @ rot2  # the centres in the ellipse's frame
+            solid = (q[..., 0] / axes[0]) ** 2 + (q[..., 1] / axes[1]) ** 2 < 1.0
+            yield f"random ellipse {seed} {kw}", _tagged(solid, ghost), g2, loop, kw
 
 
 @pytest.mark.parametrize("case", list(_fit_cases()), ids=lambda c: c[0])
