@@ -525,14 +525,29 @@ class BodyCase:
 
     @property
     def te_point(self) -> tuple[float, float, float]:
-        """A trailing-edge point (mid-span of a generated wing), placed frame, metres."""
+        """A trailing-edge point, placed frame, metres.
+
+        For a generated wing, the trailing edge of the section at mid-span, placed
+        as make_wing places it (chord tapered, leading edge swept, section twisted
+        about its quarter chord); for a 2-D section, its trailing edge; for a
+        surface file, the vertex furthest along +x.
+        """
         b = self.spec
         if b.section is None:
             v = np.asarray(self.surface.vertices)
             i = int(np.argmax(v[:, 0]))
             return tuple(float(c) for c in v[i])
-        z = 0.0 if (b.centred or b.planar) else 0.5 * (b.span or 0.0)
-        return tuple(float(c) for c in np.array([b.chord, 0.0, z]) + np.asarray(b.offset))
+        if b.planar:
+            return tuple(float(c) for c in np.array([b.chord, 0.0, 0.0]) + np.asarray(b.offset))
+        layout = self.surface.metadata.get("wing") or self._body_frame_surface().metadata["wing"]
+        z = 0.0 if b.centred else 0.5 * float(b.span)
+        length = layout.z_tip - layout.z_root
+        frac = min(max((z - layout.z_root) / length, 0.0), 1.0) if length > 0 else 0.0
+        chord = b.chord * (1.0 + (b.taper - 1.0) * frac)
+        x_le = (z - layout.z_root) * math.tan(b.sweep)
+        pitch = b.twist * frac
+        te = np.array([x_le + 0.25 * chord + 0.75 * chord * math.cos(pitch), -0.75 * chord * math.sin(pitch), z])
+        return tuple(float(c) for c in te + np.asarray(b.offset))
 
 
 def _resolve(path: str, base: Path | None, where: str) -> Path:

@@ -2,6 +2,7 @@
 
 import math
 
+import numpy as np
 import pytest
 
 from ibprep import InputError
@@ -107,3 +108,37 @@ def test_every_key_is_documented():
     for table, keys in KEYS.items():
         for name, spec in keys.items():
             assert spec.doc, f"[{table}] {name} needs a line of documentation"
+
+
+@pytest.mark.parametrize(
+    "extra",
+    ["", "taper = 0.6", "taper = 0.5\nsweep_deg = 20\ntwist_deg = -8", "taper = 0.7\ntips = \"round\"\ncentred = true"],
+)
+def test_te_point_lies_on_the_trailing_edge_at_mid_span(extra):
+    # Reference: libigl's point_mesh_squared_distance (an independent closest-point code):
+    # the point must lie on the generated surface. It must also be the section's
+    # furthest-aft point (largest x) among the surface points in the plane z = z_mid.
+    import igl
+
+    text = GOOD.replace('tips = "round"', "").replace("[body]\n", "[body]\n" + extra + "\n", 1)
+    if "tips" not in extra:
+        text = text.replace("[body]\n", '[body]\ntips = "flat"\n', 1)
+    case = parse_case(text)
+    body = case.bodies[0]
+    te = np.array(body.te_point)
+    v = np.asarray(body.surface.vertices)
+    f = np.asarray(body.surface.faces, dtype=np.int64)
+    d2, _, _ = igl.point_mesh_squared_distance(te[None], v, f)
+    assert math.sqrt(d2[0]) < 1e-12 * case.chord
+    z_mid = 0.0 if "centred" in extra else 0.5 * 0.18
+    assert te[2] == pytest.approx(z_mid, abs=1e-15)
+    # The mid-span section cut: intersect the surface's edges with z = z_mid.
+    e = np.asarray(body.surface.edges_unique)
+    za, zb = v[e[:, 0], 2], v[e[:, 1], 2]
+    cut = (za - z_mid) * (zb - z_mid) < 0
+    s = (z_mid - za[cut]) / (zb[cut] - za[cut])
+    pts = v[e[cut, 0]] + s[:, None] * (v[e[cut, 1]] - v[e[cut, 0]])
+    pts = np.vstack([pts, v[np.abs(v[:, 2] - z_mid) <= 1e-15]])  # a station may lie at z_mid
+    assert te[0] >= pts[:, 0].max() - 1e-12 * case.chord
+    if not extra:
+        assert np.allclose(te, (0.06, 0.0, 0.09), atol=1e-15)
