@@ -9,6 +9,7 @@ traceback; ``--debug`` shows it).
 from __future__ import annotations
 
 import argparse
+import math
 import sys
 from pathlib import Path
 
@@ -114,8 +115,13 @@ def format_report(report) -> str:
     fig("k h", n.get("kh"))
     fig("Strouhal 2 f h0 / U", n.get("strouhal_2fh0_U"))
     fig("Strouhal, TE excursion", n.get("strouhal_te"))
-    fig("max |alpha_eff| (deg)", n.get("alpha_eff_max_deg"), "{:.2f}")
-    fig("feathering chi", n.get("feathering_chi"))
+    # Quasi-steady from plunge and pitch: a roll stroke changes the angle along the span.
+    rolls = bool(n.get("roll_amplitude_deg"))
+    fig("max |alpha_eff| (deg" + (", no roll)" if rolls else ")"), n.get("alpha_eff_max_deg"), "{:.2f}")
+    chi = n.get("feathering_chi")
+    if chi is not None and not math.isfinite(chi):
+        chi = "n/a (no plunge)"
+    fig("feathering chi", chi)
     fig("peak TE speed / U", n.get("max_te_speed_U"))
     fig("peak surface speed / U", n.get("max_surface_speed_U"))
     if g:

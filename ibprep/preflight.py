@@ -440,6 +440,7 @@ def preflight(case: Case, *, all_steps: bool | None = None, workers: int = 1, sc
         "k_half_chord": nums.k_half_chord, "plunge_ratio_h0_c": nums.plunge_ratio, "kh": nums.kh,
         "strouhal_2fh0_U": nums.strouhal, "strouhal_te": nums.strouhal_te,
         "alpha_eff_max_deg": math.degrees(nums.alpha_max), "feathering_chi": nums.feathering,
+        "roll_amplitude_deg": math.degrees(getattr(motion, "roll_amplitude", 0.0)),
         "max_te_speed_U": nums.max_te_speed, "max_surface_speed_U": nums.max_surface_speed,
     }
     figures["resolution"] = {"spacing_at_body_m": h, "level_at_body": level, "chord_m": c,

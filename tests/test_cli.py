@@ -1,6 +1,7 @@
 """The command line, in process (main([...])) and once as a subprocess."""
 
 import json
+import math
 import os
 import subprocess
 import sys
@@ -210,3 +211,22 @@ def test_progress_lines_are_rate_limited(monkeypatch, capsys):
                                                    "checking steps: 20/100", "checking steps: 3/10",
                                                    "checking steps: 100/100"]
     assert "about" in lines[0] and "to go" in lines[0] and "to go" not in lines[-1]
+
+
+def test_figures_say_when_a_number_does_not_apply():
+    # A rolling fin without plunge: the feathering parameter theta0 / atan(omega h0 / U)
+    # is undefined (no plunge), and the quasi-steady alpha_eff leaves the roll stroke out.
+    from types import SimpleNamespace
+
+    from ibprep.cli import format_report
+
+    check = SimpleNamespace(id="time.cfl", status="pass", message="fine", hint="")
+    numbers = {"alpha_eff_max_deg": 20.0, "feathering_chi": math.inf, "roll_amplitude_deg": 30.0}
+    report = SimpleNamespace(title="fin", checks=[check], figures={"numbers": numbers}, verdict="pass", caution="c")
+    text = format_report(report)
+    assert "feathering chi                     n/a (no plunge)" in text
+    assert "max |alpha_eff| (deg, no roll)     20.00" in text
+    numbers.update(feathering_chi=1.5, roll_amplitude_deg=0.0)
+    text = format_report(report)
+    assert "feathering chi                     1.5" in text
+    assert "max |alpha_eff| (deg)              20.00" in text
