@@ -151,7 +151,14 @@ def _near(value, limit) -> str:
 
 def _qty(value, unit, limit=None) -> str:
     text = f"{value:.3g}" if limit is None else _near(value, limit)
-    return f"{text} {unit}" if unit else text
+    return _counted(text, unit) if unit else text
+
+
+def _counted(text, unit) -> str:
+    """A printed number with its unit, singular for exactly one cell or chord ("1 chord")."""
+    if text == "1" and unit in ("cells", "chords"):
+        unit = unit[:-1]
+    return f"{text} {unit}"
 
 
 def _below(id_, value, warn, fail, unit, what, hint) -> Check:
@@ -286,10 +293,10 @@ def _domain_checks(case: Case, env, figures: dict) -> list[Check]:
             continue
         if value < limit:
             out.append(Check(id_, "warn", value, limit, "chords",
-                             f"{what}: {_near(value, limit)} chords, below the common-practice {_lim(limit)}",
+                             f"{what}: {_counted(_near(value, limit), 'chords')}, below the common-practice {_lim(limit)}",
                              f"move the {face} face(s) out if blockage or inflow/outflow conditions matter"))
         else:
-            out.append(Check(id_, "pass", value, limit, "chords", f"{what}: {value:.3g} chords"))
+            out.append(Check(id_, "pass", value, limit, "chords", f"{what}: {_counted(f'{value:.3g}', 'chords')}"))
     return out
 
 
@@ -345,12 +352,12 @@ def _refine_checks(case: Case, env, figures: dict) -> list[Check]:
         want = case.sizing.wake
         if wake < want:
             out.append(Check("refine.wake", "warn", wake, want, "chords",
-                             f"the finest box reaches {wake:.3g} chords behind the swept body, less than the "
+                             f"the finest box reaches {_counted(f'{wake:.3g}', 'chords')} behind the swept body, less than the "
                              f"wake allowance of {want:g}",
                              "extend the finest box downstream to resolve the near wake"))
         else:
             out.append(Check("refine.wake", "pass", wake, want, "chords",
-                             f"the finest box reaches {wake:.3g} chords behind the swept body"))
+                             f"the finest box reaches {_counted(f'{wake:.3g}', 'chords')} behind the swept body"))
     return out
 
 

@@ -143,3 +143,14 @@ def test_a_value_just_past_its_limit_never_prints_as_the_limit():
     assert "1.2344, above the maximum 1.2342" in _above("c", 1.2344, 0.5, 1.2342, "", "Courant number", "").message
     assert "1.23 cells, below the advised 1.2345" in _below("g", 1.2341, 1.2345, 0.1, "cells", "Cells", "").message
     assert "2.0000001, above the maximum 2.00000005" in _above("c", 2.0000001, 0.5, 2.00000005, "", "C", "").message
+
+
+def test_one_chord_or_cell_is_singular():
+    # A 2-D case of our own printed "the finest box reaches 1 chords behind the swept body".
+    from ibprep.preflight import _below, _counted
+
+    assert _counted("1", "chords") == "1 chord"
+    assert _counted("1.02", "chords") == "1.02 chords"
+    assert _counted("1", "cells") == "1 cell"
+    assert _counted("1", "s") == "1 s"
+    assert "gap: 1 cell, below the advised 4" in _below("g", 1.0, 4.0, 0.5, "cells", "gap", "").message
