@@ -43,6 +43,7 @@ class _Key:
     maximum: float | None = None
     choices: tuple[str, ...] | None = None
     doc: str = ""
+    fix: str = ""  # appended to an out-of-range error: how a user most likely meant it
 
 
 def _k(kind, unit="", **kw) -> _Key:
@@ -62,7 +63,8 @@ KEYS: dict[str, dict[str, _Key]] = {
         "surface": _k("str", doc="path of a closed STL/OBJ/PLY body, relative to the case file"),
         "scale": _k("float", "-", default=1.0, minimum=0.0, strict=True, doc="factor applied to surface coordinates"),
         "chord": _k("float", "m", required=True, minimum=0.0, strict=True, doc="reference (root) chord"),
-        "span": _k("float", "m", minimum=0.0, strict=True, doc="tip-to-tip span of a wing built from section"),
+        "span": _k("float", "m", minimum=0.0, strict=True, doc="tip-to-tip span of a wing built from section",
+                   fix="leave span out for a 2-D section case (two-component [grid] bounds)"),
         "tips": _k("str", default="round", choices=("flat", "round"), doc="how the wing ends are closed"),
         "taper": _k("float", "-", default=1.0, minimum=0.0, strict=True, doc="tip chord / root chord"),
         "sweep_deg": _k("float", "deg", default=0.0, minimum=-75.0, maximum=75.0, doc="leading-edge sweep"),
@@ -177,13 +179,14 @@ def _coerce(table: str, name: str, spec: _Key, value):
             if not math.isfinite(value):
                 raise InputError(f"{where} must be finite, got {value!r}")
         unit = f" {spec.unit}" if spec.unit not in ("", "-") else ""
+        fix = f"; {spec.fix}" if spec.fix else ""
         if spec.minimum is not None:
             if spec.strict and not value > spec.minimum:
-                raise InputError(f"{where} must be > {spec.minimum:g}{unit}, got {value!r}")
+                raise InputError(f"{where} must be > {spec.minimum:g}{unit}, got {value!r}{fix}")
             if not spec.strict and value < spec.minimum:
-                raise InputError(f"{where} must be >= {spec.minimum:g}{unit}, got {value!r}")
+                raise InputError(f"{where} must be >= {spec.minimum:g}{unit}, got {value!r}{fix}")
         if spec.maximum is not None and value > spec.maximum:
-            raise InputError(f"{where} must be <= {spec.maximum:g}{unit}, got {value!r}")
+            raise InputError(f"{where} must be <= {spec.maximum:g}{unit}, got {value!r}{fix}")
         return value
     if spec.kind == "vec3":
         return _vec3(where, value, sizes=(3,))

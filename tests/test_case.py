@@ -62,6 +62,7 @@ def _with(old, new):
     [
         (_with("frequency = 0.25", "frequncy = 0.25"), r"\[motion\] unknown key 'frequncy'; did you mean 'frequency'"),
         (_with("spacing = 0.004", "spacing = -0.004"), r"\[grid\] spacing must be > 0 m, got -0.004"),
+        (_with("span = 0.18", "span = 0"), r"\[body\] span must be > 0 m, got 0.0; leave span out for a 2-D"),
         (_with("speed = 0.1", "speed = nan"), r"\[flow\] speed must be finite"),
         (_with("speed = 0.1", 'speed = "fast"'), r"\[flow\] speed must be a number in m/s"),
         (_with("cycles = 1", "cycles = 1.5"), r"\[time\] cycles must be a whole number"),
