@@ -37,7 +37,11 @@ def _inputs(case: str):
         from bench_stencils import sphere_case
 
         grid, surf, tags = sphere_case(48, 5)
-    else:
+    elif case == "straight-wing":  # bench_stencils' extruded NACA 0015, 3 024 cells
+        from bench_stencils import wing_case
+
+        grid, surf, tags = wing_case(64)
+    else:  # bench_kernels' tapered wing, 41 699 cells
         from bench_kernels import wing_case
 
         grid, surf, tags = wing_case(0.000625)
@@ -66,8 +70,8 @@ def _module(source: str, name: str):
 
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--case", choices=("sphere", "wing"), default="sphere",
-                    help="sphere R = 48 h (24 384 stencils) or the tapered wing (41 699)")
+    ap.add_argument("--case", choices=("sphere", "wing", "straight-wing"), default="sphere",
+                    help="sphere R = 48 h (24 384 stencils), the tapered wing (41 699) or bench_stencils' straight wing (3 024)")
     ap.add_argument("--rev", default="HEAD", help="the git revision to compare with (default HEAD)")
     ap.add_argument("--repeat", type=int, default=7, help="alternating timed runs of each (default 7)")
     args = ap.parse_args(argv)
