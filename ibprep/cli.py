@@ -308,7 +308,7 @@ def _run_export(args) -> int:
 
     from .case import load_case
     from .classify import classify, label_bodies
-    from .export import write_markers_csv, write_tags_vtu, write_time_series
+    from .export import write_instants_csv, write_markers_csv, write_tags_vtu, write_time_series
     from .geometry import save_surface, surface_markers
     from .geometry.surface import mesh_from_arrays
     from .sizing import swept_envelope
@@ -365,6 +365,8 @@ def _run_export(args) -> int:
                 written.append(write_markers_csv(p, n, a, out / f"markers_body_frame{name}.csv"))
     if series:
         written.append(write_time_series(series, out / "tags.pvd"))
+    if what & {"stl", "tags", "stencils"}:
+        written.append(write_instants_csv(times, case.time.step, out / "instants.csv"))
     print(f"ibprep export: wrote {len(written)} files into {out}")
     for f in written:
         print(f"  {f}")

@@ -23,6 +23,7 @@ __all__ = [
     "write_tags_vtu",
     "write_time_series",
     "write_markers_csv",
+    "write_instants_csv",
 ]
 
 
@@ -230,6 +231,21 @@ def write_time_series(entries, path) -> Path:
         lines.append(f'    <DataSet timestep="{float(t):.9g}" part="0" file="{Path(f).name}"/>')
     lines += ["  </Collection>", "</VTKFile>", ""]
     text = "\n".join(lines)
+    return atomic_write(path, lambda tmp: Path(tmp).write_text(text, encoding="utf-8"))
+
+
+def write_instants_csv(times, step, path) -> Path:
+    """Write which instant each exported file stem stands for, atomically.
+
+    Columns: stem (``step0000``, ... in the order of the instants), time_s, and
+    solver_step, the nearest multiple of the time step ``step`` (s), with
+    solver_step_offset_s, how far the instant lies from it.
+    """
+    lines = ["stem,time_s,solver_step,solver_step_offset_s"]
+    for i, t in enumerate(np.asarray(times, float)):
+        n = int(round(t / step))
+        lines.append(f"step{i:04d},{t:.12g},{n},{t - n * step:.3g}")
+    text = "\n".join(lines) + "\n"
     return atomic_write(path, lambda tmp: Path(tmp).write_text(text, encoding="utf-8"))
 
 

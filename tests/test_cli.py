@@ -130,6 +130,11 @@ def test_export_writes_files_that_read_back(tmp_path, capsys):
     markers = np.loadtxt(out / "markers_body_frame.csv", delimiter=",", skiprows=1)
     assert markers.shape[1] == 7
     assert "step0001" in (out / "tags.pvd").read_text()
+    # Which instant each stem stands for (the case's step is 0.002 s, its period 4 s).
+    rows = (out / "instants.csv").read_text().splitlines()
+    assert rows == ["stem,time_s,solver_step,solver_step_offset_s", "step0000,0,0,0", "step0001,2,1000,0"]
+    assert main(["export", str(case), "--out", str(out), "--at", "0.5013", "--what", "stl"]) == 0
+    assert (out / "instants.csv").read_text().splitlines()[1] == "step0000,0.5013,251,-0.0007"
 
 
 def test_subprocess_smoke(tmp_path):
