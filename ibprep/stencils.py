@@ -198,6 +198,26 @@ class StencilSummary:
         """The summary as a plain dict (JSON-ready)."""
         return {k: getattr(self, k) for k in self.__dataclass_fields__}
 
+    def __str__(self) -> str:
+        """A few aligned lines for a terminal: counts, then each worst value with where it is."""
+        lines = [f"{self.count:,} stencils: {self.n_ok:,} ok, {self.n_bad:,} not ok"]
+        if self.count == 0:
+            return lines[0]
+
+        def where(centre, cell):
+            return "at (" + ", ".join(f"{c:.6g}" for c in centre) + f") m, cell {cell}"
+
+        for label, value, centre, cell in (
+            ("worst condition number", self.worst_condition, self.worst_condition_centre, self.worst_condition_cell),
+            ("worst weight bound", self.worst_weight_bound, self.worst_weight_bound_centre,
+             self.worst_weight_bound_cell),
+            ("most negative weight", self.most_negative_weight, self.most_negative_weight_centre,
+             self.most_negative_weight_cell),
+        ):
+            lines.append(f"  {label:<26} {value:<10.4g} {where(centre, cell)}")
+        lines.append(f"  {'fewest visible neighbours':<26} {self.fewest_visible}")
+        return "\n".join(lines)
+
 
 # Set (per thread) while a Stencils is made from arrays nobody else holds.
 _ADOPTING = threading.local()

@@ -396,6 +396,15 @@ def test_summary_points_at_worst_cell():
     assert s.worst_weight_bound == st.weight_bound.max()
     assert s.most_negative_weight == st.min_weight.min() <= 0.0
     assert set(s.as_dict()) >= {"count", "n_ok", "worst_condition"}
+    # Printed: one line of counts, then each worst value with its place.
+    text = str(s).splitlines()
+    assert text[0] == f"{s.count:,} stencils: {s.n_ok:,} ok, {s.n_bad:,} not ok"
+    assert text[1].split()[:4] == ["worst", "condition", "number", f"{s.worst_condition:.4g}"]
+    assert text[1].endswith(f"m, cell {s.worst_condition_cell}")
+    assert text[4].split() == ["fewest", "visible", "neighbours", str(s.fewest_visible)]
+    nan = float("nan")
+    empty = type(s)(0, 0, 0, nan, -1, (), nan, -1, (), nan, -1, (), -1)
+    assert str(empty) == "0 stencils: 0 ok, 0 not ok"
 
 
 def test_weights_sum_to_one_for_dirichlet():
