@@ -8,6 +8,8 @@ or for 2-D work a closed polygon) into those arrays.
 
 from __future__ import annotations
 
+import os
+
 import numpy as np
 
 from .errors import InputError
@@ -60,6 +62,9 @@ def as_triangles(surface) -> tuple[np.ndarray, np.ndarray]:
     if hasattr(surface, "vertices") and hasattr(surface, "faces"):
         vertices, faces = surface.vertices, surface.faces
     else:
+        if isinstance(surface, (str, os.PathLike)):
+            raise InputError(f"a surface must be loaded first: got the path {str(surface)!r}; "
+                             "pass ibprep.load_surface(path) instead")
         try:
             vertices, faces = surface
         except (TypeError, ValueError):

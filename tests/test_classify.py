@@ -527,6 +527,8 @@ def test_bad_surfaces_raise_input_error():
         classify((v, np.empty((0, 3), np.int64)), grid)
     with pytest.raises(InputError, match="must be an ibprep.Grid"):
         classify((v, f), "grid")
+    with pytest.raises(InputError, match=r"got the path 'body.stl'; pass ibprep.load_surface\(path\)"):
+        classify("body.stl", grid)
     with pytest.raises(InputError, match="previous_tags must be a uint8 array"):
         step_tags(np.zeros((3, 3, 3), np.uint8), (v, f), grid, previous_surface=(v, f))
 
