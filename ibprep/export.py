@@ -55,7 +55,8 @@ def _save_figure(fig, path) -> Path:
 
 
 def plot_motion(motion, chord: float, speed: float, path, *, title: str = "") -> Path:
-    """PNG of one cycle: plunge h/c, pitch θ and effective angle of attack α_eff (degrees) against t/T."""
+    """PNG of one cycle against t/T: plunge h/c; pitch θ, effective angle of attack α_eff and, with a
+    roll stroke, the roll angle φ (degrees)."""
     plt = _pyplot()
     T = motion.period
     t = np.linspace(0.0, T, 721)
@@ -68,7 +69,9 @@ def plot_motion(motion, chord: float, speed: float, path, *, title: str = "") ->
     ax[0].grid(alpha=0.3)
     ax[0].legend(loc="upper right", fontsize=8)
     ax[1].plot(t / T, th, color="tab:orange", label="pitch θ (nose-up +)")
-    ax[1].plot(t / T, al, color="tab:green", label="α_eff = θ − atan((dh/dt)/U)")
+    ax[1].plot(t / T, al, color="tab:green", linestyle="--", label="α_eff = θ − atan((dh/dt)/U)")
+    if getattr(motion, "roll_amplitude", 0.0):
+        ax[1].plot(t / T, np.degrees(np.asarray(motion.roll(t))), color="tab:purple", label="roll φ")
     ax[1].set_ylabel("degrees")
     ax[1].set_xlabel("t / T")
     ax[1].grid(alpha=0.3)

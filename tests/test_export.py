@@ -53,3 +53,27 @@ def test_written_files_get_the_usual_permissions(tmp_path):
     os.chmod(p, 0o640)
     atomic_write(p, lambda tmp: open(tmp, "w").write("y"))
     assert p.stat().st_mode & 0o777 == 0o640  # an existing file keeps its mode
+
+
+@pytest.mark.parametrize("roll_deg, labels", [(0.0, 2), (30.0, 3)])
+def test_motion_plot_shows_the_roll_stroke_when_there_is_one(tmp_path, monkeypatch, roll_deg, labels):
+    import math
+
+    import ibprep.export as ex
+    from ibprep import Motion
+
+    seen = {}
+    real = ex._save_figure
+
+    def spy(fig, path):
+        seen["lines"] = {ln.get_label(): ln.get_ydata() for ln in fig.axes[1].get_lines()}
+        return real(fig, path)
+
+    monkeypatch.setattr(ex, "_save_figure", spy)
+    mot = Motion(frequency=1.0, pitch_amplitude=math.radians(20), phase=math.pi / 2,
+                 roll_amplitude=math.radians(roll_deg))
+    path = ex.plot_motion(mot, 0.04, 0.08, tmp_path / "motion.png")
+    assert path.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert len(seen["lines"]) == labels
+    if roll_deg:
+        assert np.max(seen["lines"]["roll φ"]) == pytest.approx(roll_deg, rel=1e-4)  # sampled peak of a sine
