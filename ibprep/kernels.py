@@ -913,21 +913,7 @@ def _normal_derivative_row(x, y, z, nx, ny, nz, planar, out):
 
 
 @numba.njit(**_JIT)
-def _piece_lower_bounds(m, l_so, l_cc, l_box, reach, out):
-    """Lower bounds of the distance from the origin to each of the m gathered pieces, into out.
-
-    A piece lies in its face's plane, l_so from the origin, within l_box of its centre,
-    which is sqrt(cc - so^2) from the origin's foot in that plane. The margin keeps each
-    bound below the exact distance whatever the round-off.
-    """
-    for k in range(m):
-        so2 = l_so[k] * l_so[k]
-        lat = max(math.sqrt(max(l_cc[k] - so2, 0.0)) - l_box[k], 0.0)
-        out[k] = math.sqrt(so2 + lat * lat) - 1e-6 * (l_box[k] + reach)
-
-
-@numba.njit(**_JIT)
-def _boundary_point(i, ox, oy, oz, reach, m, l_face, l_cc, l_box, l_so, l_lb, tri, qb, grid_origin, s, dims, q_max, bstart,
+def _boundary_point(i, ox, oy, oz, reach, m, l_face, l_cc, l_box, tri, qb, grid_origin, s, dims, q_max, bstart,
                     bcount, bitems, pcentre, pradius, pwitness, pparent, faces, fnormal, enormal, vnormal, two_d,
                     nudge, state, qbuf, nbuf, bpt, nrm, dist):
     """Closest surface point and pseudo-normal of the origin into bpt[i], nrm[i], dist[i].
@@ -944,15 +930,14 @@ def _boundary_point(i, ox, oy, oz, reach, m, l_face, l_cc, l_box, l_so, l_lb, tr
     breg = 0
     bx = by = bz = 0.0
     tie = False
-    # The piece with the least lower bound first: its distance then prunes most of the others.
-    _piece_lower_bounds(m, l_so, l_cc, l_box, reach, l_lb)
+    # The piece whose centre is nearest first: its distance then prunes most of the others.
     first = 0
     for k in range(1, m):
-        if l_lb[k] < l_lb[first]:
+        if l_cc[k] < l_cc[first]:
             first = k
     for kk in range(m):
         k = first if kk == 0 else (kk - 1 if kk <= first else kk)
-        r = l_lb[k]  # no point of the piece is nearer than this
+        r = math.sqrt(l_cc[k]) - l_box[k]  # no point of the piece is nearer than this
         if r > 0.0 and r * r > best:
             continue
         f = l_face[k]
@@ -1405,7 +1390,6 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
     key = np.empty(no)
     lo, hi, l_face, l_cx, l_cy, l_cz, l_box, l_so, l_cc, l_r2, c_mx, c_my, c_mz, c_ok = _fan_scratch(
         citems.shape[0], no)
-    l_lb = np.empty(citems.shape[0])
     Bt, V, beta, G4, y, acc, alpha, vv, G, d, e2, v, p_, nk4, cl = _lanes_scratch(kmax + 1, m)
     sw = np.empty((kmax + 1, _LANES))
     row_of = np.empty((kmax + 1, _LANES), dtype=np.int64)
@@ -1501,7 +1485,7 @@ def _stencils_kernel(tags, shape3, lower3, h, cells, anchor, origin, centre, bpt
                 reach = math.sqrt(longest) * (1 + 1e-9)
                 mg = _gather(ox, oy, oz, reach, grid_origin, s, dims, cstart, ccount, citems, pcentre, pradius,
                              pparent, tri, fnormal, rmax, lo, hi, l_face, l_cx, l_cy, l_cz, l_box, l_so, l_cc, l_r2)
-                on_surface = _boundary_point(i, ox, oy, oz, reach, mg, l_face, l_cc, l_box, l_so, l_lb, tri, qb, grid_origin, s,
+                on_surface = _boundary_point(i, ox, oy, oz, reach, mg, l_face, l_cc, l_box, tri, qb, grid_origin, s,
                                              dims, q_max, bstart, bcount, bitems, pcentre, pradius, pwitness,
                                              pparent, faces, fnormal, enormal, vnormal, two_d, nudge, state, qbuf,
                                              nbuf, bpt, nrm, dist)
