@@ -531,9 +531,13 @@ class BodyCase:
         """A trailing-edge point, placed frame, metres.
 
         For a generated wing, the trailing edge of the section at mid-span, placed
-        as make_wing places it (chord tapered, leading edge swept, section twisted
-        about its quarter chord); for a 2-D section, its trailing edge; for a
-        surface file, the vertex furthest along +x.
+        as make_wing places its straight part (chord tapered, leading edge swept,
+        section twisted about its quarter chord; between two spanwise stations of
+        a twisted wing the facets lie within about (twist step)^2 chord of that
+        shape); where mid-span falls on a rounded end (a span shorter than the
+        ends' bulge), the trailing edge of the nearest end of the straight part.
+        For a 2-D section, its trailing edge; for a surface file, the vertex
+        furthest along +x.
         """
         b = self.spec
         if b.section is None:
@@ -544,8 +548,9 @@ class BodyCase:
             return tuple(float(c) for c in np.array([b.chord, 0.0, 0.0]) + np.asarray(b.offset))
         layout = self.surface.metadata.get("wing") or self._body_frame_surface().metadata["wing"]
         z = 0.0 if b.centred else 0.5 * float(b.span)
+        z = min(max(z, layout.z_root), layout.z_tip)
         length = layout.z_tip - layout.z_root
-        frac = min(max((z - layout.z_root) / length, 0.0), 1.0) if length > 0 else 0.0
+        frac = (z - layout.z_root) / length if length > 0 else 0.0
         chord = b.chord * (1.0 + (b.taper - 1.0) * frac)
         x_le = (z - layout.z_root) * math.tan(b.sweep)
         pitch = b.twist * frac
