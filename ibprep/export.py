@@ -7,6 +7,8 @@ matplotlib and meshio are imported inside the functions that need them.
 
 from __future__ import annotations
 
+import math
+
 from pathlib import Path
 
 import numpy as np
@@ -241,12 +243,13 @@ def write_instants_csv(times, step, path) -> Path:
     """Write which instant each exported file stem stands for, atomically.
 
     Columns: stem (``step0000``, ... in the order of the instants), time_s, and
-    solver_step, the nearest multiple of the time step ``step`` (s), with
-    solver_step_offset_s, how far the instant lies from it.
+    solver_step, the nearest multiple of the time step ``step`` (s; an instant
+    half-way between two goes to the later), with solver_step_offset_s, how far
+    the instant lies from it.
     """
     lines = ["stem,time_s,solver_step,solver_step_offset_s"]
     for i, t in enumerate(np.asarray(times, float)):
-        n = int(round(t / step))
+        n = math.floor(t / step + 0.5)
         lines.append(f"step{i:04d},{t:.12g},{n},{t - n * step:.3g}")
     text = "\n".join(lines) + "\n"
     return atomic_write(path, lambda tmp: Path(tmp).write_text(text, encoding="utf-8"))

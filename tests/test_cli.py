@@ -135,6 +135,10 @@ def test_export_writes_files_that_read_back(tmp_path, capsys):
     assert rows == ["stem,time_s,solver_step,solver_step_offset_s", "step0000,0,0,0", "step0001,2,1000,0"]
     assert main(["export", str(case), "--out", str(out), "--at", "0.5013", "--what", "stl"]) == 0
     assert (out / "instants.csv").read_text().splitlines()[1] == "step0000,0.5013,251,-0.0007"
+    # Half-way instants go to the later step, both ways up (not to the even one).
+    assert main(["export", str(case), "--out", str(out), "--at", "0.001", "0.003", "--what", "stl"]) == 0
+    rows = (out / "instants.csv").read_text().splitlines()[1:]
+    assert [r.split(",")[2] for r in rows] == ["1", "2"]
 
 
 def test_subprocess_smoke(tmp_path):
