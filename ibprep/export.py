@@ -8,7 +8,6 @@ matplotlib and meshio are imported inside the functions that need them.
 from __future__ import annotations
 
 import math
-
 from pathlib import Path
 
 import numpy as np

@@ -293,10 +293,10 @@ def _domain_checks(case: Case, env, figures: dict) -> list[Check]:
             continue
         if value < limit:
             out.append(Check(id_, "warn", value, limit, "chords",
-                             f"{what}: {_counted(_near(value, limit), 'chords')}, below the common-practice {_lim(limit)}",
+                             f"{what}: {_qty(value, 'chords', limit)}, below the common-practice {_lim(limit)}",
                              f"move the {face} face(s) out if blockage or inflow/outflow conditions matter"))
         else:
-            out.append(Check(id_, "pass", value, limit, "chords", f"{what}: {_counted(f'{value:.3g}', 'chords')}"))
+            out.append(Check(id_, "pass", value, limit, "chords", f"{what}: {_qty(value, 'chords')}"))
     return out
 
 
@@ -352,12 +352,12 @@ def _refine_checks(case: Case, env, figures: dict) -> list[Check]:
         want = case.sizing.wake
         if wake < want:
             out.append(Check("refine.wake", "warn", wake, want, "chords",
-                             f"the finest box reaches {_counted(f'{wake:.3g}', 'chords')} behind the swept body, less than the "
+                             f"the finest box reaches {_qty(wake, 'chords')} behind the swept body, less than the "
                              f"wake allowance of {want:g}",
                              "extend the finest box downstream to resolve the near wake"))
         else:
             out.append(Check("refine.wake", "pass", wake, want, "chords",
-                             f"the finest box reaches {_counted(f'{wake:.3g}', 'chords')} behind the swept body"))
+                             f"the finest box reaches {_qty(wake, 'chords')} behind the swept body"))
     return out
 
 
