@@ -123,6 +123,8 @@ def format_report(report) -> str:
         chi = "n/a (no plunge)"
     fig("feathering chi", chi)
     fig("peak TE speed / U", n.get("max_te_speed_U"))
+    if n.get("te_point_m") is not None:  # where the TE figures are taken (placed body frame)
+        fig("TE point used (m, body frame)", "(" + ", ".join(f"{x:.4g}" for x in n["te_point_m"]) + ")")
     fig("peak surface speed / U", n.get("max_surface_speed_U"))
     if g:
         fig("grid levels", g.get("levels"), "{}")

@@ -449,6 +449,7 @@ def preflight(case: Case, *, all_steps: bool | None = None, workers: int = 1, sc
         "alpha_eff_max_deg": math.degrees(nums.alpha_max), "feathering_chi": nums.feathering,
         "roll_amplitude_deg": math.degrees(getattr(motion, "roll_amplitude", 0.0)),
         "max_te_speed_U": nums.max_te_speed, "max_surface_speed_U": nums.max_surface_speed,
+        "te_point_m": [float(x) for x in case.te_point],
     }
     figures["resolution"] = {"spacing_at_body_m": h, "level_at_body": level, "chord_m": c,
                              "le_radius_m": lengths.le_radius, "bl_thickness_m": lengths.bl_thickness,

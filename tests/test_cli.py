@@ -230,11 +230,13 @@ def test_figures_say_when_a_number_does_not_apply():
     from ibprep.cli import format_report
 
     check = SimpleNamespace(id="time.cfl", status="pass", message="fine", hint="")
-    numbers = {"alpha_eff_max_deg": 20.0, "feathering_chi": math.inf, "roll_amplitude_deg": 30.0}
+    numbers = {"alpha_eff_max_deg": 20.0, "feathering_chi": math.inf, "roll_amplitude_deg": 30.0,
+               "te_point_m": [0.032, 0.0, 0.05]}
     report = SimpleNamespace(title="fin", checks=[check], figures={"numbers": numbers}, verdict="pass", caution="c")
     text = format_report(report)
     assert "feathering chi                     n/a (no plunge)" in text
     assert "max |alpha_eff| (deg, no roll)     20.00" in text
+    assert "TE point used (m, body frame)      (0.032, 0, 0.05)" in text  # where the TE figures come from
     numbers.update(feathering_chi=1.5, roll_amplitude_deg=0.0)
     text = format_report(report)
     assert "feathering chi                     1.5" in text
