@@ -6,7 +6,7 @@ Run from the repository root::
     python benchmarks/ab_stencil_pass.py --case wing --rev 98c3484
 
 Absolute timings on a shared machine drift (by 1.5x within an hour here), so a
-change to ``ibprep/kernels.py`` is judged by running the old and the new pass
+change to ``ibprep/stencils/kernels.py`` is judged by running the old and the new pass
 alternately on the same inputs (those of one ``build_stencils`` call) and
 comparing their best times. The outputs are compared too: a change meant to keep
 results should show zero differences. Both versions are compiled without the
@@ -28,7 +28,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "benchmarks"))
 
-import ibprep.stencils as _stencils  # noqa: E402
+import ibprep.stencils.build as _stencils  # noqa: E402
 
 
 def _inputs(case: str):
@@ -61,11 +61,24 @@ def _inputs(case: str):
 
 
 def _module(source: str, name: str):
-    """ibprep.kernels compiled from source, without the on-disk cache."""
-    source = source.replace("cache=True", "cache=False").replace("from .", "from ibprep.")
+    """ibprep.stencils.kernels compiled from source, without the on-disk cache."""
+    source = source.replace("cache=True", "cache=False").replace("from .", "from ibprep.stencils.")
     mod = types.ModuleType(name)
     exec(compile(source, name, "exec"), mod.__dict__)
     return mod
+
+
+def _source_at(rev: str) -> str:
+    """The kernels module's source at a revision (it lived at ibprep/kernels.py before the subpackages)."""
+    for path in ("ibprep/stencils/kernels.py", "ibprep/kernels.py"):
+        try:
+            src = subprocess.check_output(["git", "-C", str(ROOT), "show", f"{rev}:{path}"], text=True,
+                                          stderr=subprocess.DEVNULL)
+        except subprocess.CalledProcessError:
+            continue
+        # Both layouts keep proximity beside the kernels, so their relative imports resolve alike.
+        return src
+    raise SystemExit(f"ab_stencil_pass: no kernels module at revision {rev}")
 
 
 def main(argv=None) -> int:
@@ -75,8 +88,8 @@ def main(argv=None) -> int:
     ap.add_argument("--rev", default="HEAD", help="the git revision to compare with (default HEAD)")
     ap.add_argument("--repeat", type=int, default=7, help="alternating timed runs of each (default 7)")
     args = ap.parse_args(argv)
-    old_src = subprocess.check_output(["git", "-C", str(ROOT), "show", f"{args.rev}:ibprep/kernels.py"], text=True)
-    new_src = (ROOT / "ibprep" / "kernels.py").read_text()
+    old_src = _source_at(args.rev)
+    new_src = (ROOT / "ibprep" / "stencils" / "kernels.py").read_text()
     a, kw = _inputs(args.case)
     old, new = _module(old_src, "kernels_old"), _module(new_src, "kernels_new")
     out_old, out_new = old.stencil_fits(*a, **kw), new.stencil_fits(*a, **kw)

@@ -1,4 +1,4 @@
-"""Side-by-side timing of ibprep.classify against general-purpose inside/outside queries.
+"""Side-by-side timing of ibprep.tagging.classify against general-purpose inside/outside queries.
 
 Run from the repository root::
 
@@ -40,7 +40,7 @@ sys.path.insert(0, os.path.join(ROOT, "tests"))
 from conftest import sphere_mesh, wing_mesh  # noqa: E402
 
 from ibprep import Grid  # noqa: E402
-from ibprep.classify import CellTag, classify, step_tags  # noqa: E402
+from ibprep.tagging.classify import CellTag, classify, step_tags  # noqa: E402
 
 __all__ = ["grid_of_class", "wing_of_size", "main"]
 
@@ -269,8 +269,8 @@ def step_row(gname, grid, body, pose, steps):
 
 def demo_step_row(steps):
     """The stepping row of the demo case's finest level (21.8 M cells) and wing."""
-    from ibprep.case import parse_case
-    from ibprep.demo import DEMO_CASE
+    from ibprep.io.case import parse_case
+    from ibprep.io.demo import DEMO_CASE
 
     case = parse_case(DEMO_CASE)
     grid = case.grid.finest

@@ -1,4 +1,4 @@
-"""Compiled kernels (ibprep.kernels) against the numpy paths they replace, side by side.
+"""Compiled kernels (ibprep.stencils.kernels) against the numpy paths they replace, side by side.
 
 Run from the repository root::
 
@@ -34,9 +34,10 @@ sys.path.insert(0, str(ROOT))
 import igl  # noqa: E402
 from scipy import ndimage  # noqa: E402
 
-from ibprep import Grid, build_stencils, kernels, stencils  # noqa: E402
-from ibprep.classify import CellTag  # noqa: E402
-from ibprep.proximity import TriangleIndex  # noqa: E402
+from ibprep import Grid, build_stencils  # noqa: E402
+from ibprep.stencils import build as stencils, kernels  # noqa: E402
+from ibprep.tagging.classify import CellTag  # noqa: E402
+from ibprep.stencils.proximity import TriangleIndex  # noqa: E402
 
 
 def wing_mesh(chord=0.08, span=0.12, n_section=240, n_span=44, code_t=0.15, pitch=0.17, taper=0.6):
@@ -173,7 +174,7 @@ def compile_cost():
     """Seconds for the first calls in a fresh process: empty numba cache, then warm cache."""
     code = (
         "import time,sys; sys.path.insert(0, %r); import numpy as np, trimesh;"
-        "from ibprep import kernels; from ibprep.proximity import TriangleIndex;"
+        "from ibprep.stencils import kernels; from ibprep.stencils.proximity import TriangleIndex;"
         "m = trimesh.creation.icosphere(1); idx = TriangleIndex(m.vertices, m.faces, bucket_size=0.5);"
         "t = time.perf_counter(); kernels.segments_cross_fan(idx, np.zeros((1,3)), np.ones((1,1,3)), np.ones((1,1),bool), 2.0);"
         "a = time.perf_counter(); kernels.closest(idx, np.zeros((1,3))); b = time.perf_counter();"

@@ -1,4 +1,4 @@
-"""Benchmarks of ibprep.kinematics against general-purpose peers, measured side by side.
+"""Benchmarks of ibprep.motion.kinematics against general-purpose peers, measured side by side.
 
 Peers:
 * world positions and velocities of many body points at many instants, against the
@@ -24,7 +24,7 @@ from scipy.spatial.transform import Rotation
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from ibprep.kinematics import Motion, flow_numbers  # noqa: E402
+from ibprep.motion.kinematics import Motion, flow_numbers  # noqa: E402
 
 __all__ = ["PoseAndVelocity", "CycleMaximum"]
 

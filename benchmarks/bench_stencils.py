@@ -41,8 +41,8 @@ from scipy import ndimage  # noqa: E402
 from scipy.spatial import cKDTree  # noqa: E402
 
 from ibprep import Grid, build_stencils  # noqa: E402
-from ibprep.classify import CellTag  # noqa: E402
-from ibprep.triangles import extrude_loops  # noqa: E402
+from ibprep.tagging.classify import CellTag  # noqa: E402
+from ibprep.geometry.triangles import extrude_loops  # noqa: E402
 
 
 def sphere_case(cells_per_radius: float, subdivisions: int = 5):

@@ -25,7 +25,7 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 import ibprep  # noqa: E402
-from ibprep.triangles import transform_points  # noqa: E402
+from ibprep.geometry.triangles import transform_points  # noqa: E402
 
 
 def best_of(fn, repeat=3):
@@ -108,7 +108,7 @@ def part_scaling(quick):
 
 
 def part_demo(quick):
-    from ibprep.demo import DEMO_CASE
+    from ibprep.io.demo import DEMO_CASE
 
     case = ibprep.parse_case(DEMO_CASE)
     if quick:

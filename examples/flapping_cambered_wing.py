@@ -16,7 +16,7 @@ import sys
 from pathlib import Path
 
 import ibprep
-from ibprep.sizing import propose_boxes
+from ibprep.checks.sizing import propose_boxes
 
 CASE = """\
 # Invented scenario: a flapping cambered wing of a small vehicle (numbers are ours).

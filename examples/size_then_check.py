@@ -19,7 +19,7 @@ import sys
 from pathlib import Path
 
 import ibprep
-from ibprep.sizing import propose_boxes, required_spacing, resolution_lengths
+from ibprep.checks.sizing import propose_boxes, required_spacing, resolution_lengths
 
 CASE = """\
 # Invented scenario: a flapping NACA 0012 wing in a small water flume (numbers are ours).

@@ -7,8 +7,8 @@ the README for a tour.
 
 from __future__ import annotations
 
-from .case import BodyCase, Case, CheckLimits, load_case, parse_case
-from .classify import CellTag, Transition, classify, classify_levels, label_bodies, step_tags
+from .io.case import BodyCase, Case, CheckLimits, load_case, parse_case
+from .tagging.classify import CellTag, Transition, classify, classify_levels, label_bodies, step_tags
 from .errors import IbprepError, IbprepWarning, InputError, MissingDependencyError
 from .geometry import (
     Section,
@@ -23,7 +23,7 @@ from .geometry import (
     thin_regions,
 )
 from .grid import Grid, NestedGrid, refine
-from .kinematics import (
+from .motion.kinematics import (
     FlowNumbers,
     Motion,
     Sine,
@@ -34,10 +34,10 @@ from .kinematics import (
     flow_numbers,
     load_waveform_table,
 )
-from .preflight import Check, Report, preflight
-from .sizing import propose_boxes, swept_envelope
-from .stencils import StencilLimits, Stencils, StencilSummary, build_stencils, load_stencils
-from .sweep import StepResult, sweep
+from .checks.preflight import Check, Report, preflight
+from .checks.sizing import propose_boxes, swept_envelope
+from .stencils.build import StencilLimits, Stencils, StencilSummary, build_stencils, load_stencils
+from .checks.sweep import StepResult, sweep
 
 __version__ = "0.1.0.dev0"
 

@@ -162,9 +162,9 @@ def _engine_args(p):
 
 
 def _run_check(args) -> int:
-    from .case import load_case
-    from .export import write_json_report
-    from .preflight import preflight
+    from .io.case import load_case
+    from .io.export import write_json_report
+    from .checks.preflight import preflight
 
     case = load_case(args.case)
     if args.json:
@@ -211,7 +211,7 @@ class _WorstStep:
     """
 
     def __init__(self, case, report):
-        from .classify import classify
+        from .tagging.classify import classify
 
         self.step = max(report.steps, key=lambda s: (s.n_bad, s.worst_condition))
         self.grid = case.grid.levels[report.figures["resolution"]["level_at_body"]]
@@ -220,7 +220,7 @@ class _WorstStep:
 
 
 def _write_plots(case, report, folder: Path, worst: "_WorstStep | None" = None) -> list[Path]:
-    from .export import plot_motion, plot_steps, plot_tags_slice
+    from .io.export import plot_motion, plot_steps, plot_tags_slice
 
     out = [plot_motion(case.motion, case.chord, case.flow.speed, folder / "motion.png", title=case.title)]
     if report.steps:
@@ -245,8 +245,8 @@ def _size_add_args(p):
 
 
 def _run_size(args) -> int:
-    from .case import load_case
-    from .sizing import propose_boxes, required_spacing, resolution_lengths, swept_envelope
+    from .io.case import load_case
+    from .checks.sizing import propose_boxes, required_spacing, resolution_lengths, swept_envelope
 
     case = load_case(args.case)
     c = case.chord
@@ -308,13 +308,13 @@ def _export_add_args(p):
 def _run_export(args) -> int:
     import numpy as np
 
-    from .case import load_case
-    from .classify import classify, label_bodies
-    from .export import write_instants_csv, write_markers_csv, write_tags_vtu, write_time_series
+    from .io.case import load_case
+    from .tagging.classify import classify, label_bodies
+    from .io.export import write_instants_csv, write_markers_csv, write_tags_vtu, write_time_series
     from .geometry import save_surface, surface_markers
     from .geometry.surface import mesh_from_arrays
-    from .sizing import swept_envelope
-    from .stencils import build_stencils
+    from .checks.sizing import swept_envelope
+    from .stencils.build import build_stencils
 
     allowed = {"stl", "tags", "stencils", "markers"}
     what = {w.strip() for w in args.what.split(",") if w.strip()}
@@ -386,12 +386,12 @@ def _demo_add_args(p):
 
 
 def _run_demo(args) -> int:
-    from .case import load_case
-    from .demo import DEMO_CASE
-    from .export import write_json_report, write_tags_vtu
+    from .io.case import load_case
+    from .io.demo import DEMO_CASE
+    from .io.export import write_json_report, write_tags_vtu
     from .files import atomic_write
     from .geometry import save_surface
-    from .preflight import preflight
+    from .checks.preflight import preflight
 
     out = _folder(args.out)
     case_path = atomic_write(out / "case.toml", lambda tmp: Path(tmp).write_text(DEMO_CASE, encoding="utf-8"))

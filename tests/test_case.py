@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from ibprep import InputError
-from ibprep.case import KEYS, load_case, parse_case
+from ibprep.io.case import KEYS, load_case, parse_case
 
 GOOD = """
 [body]

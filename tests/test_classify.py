@@ -1,4 +1,4 @@
-"""Tests of ibprep.classify: exact tags, tie-breaking, interface layers, stepping, 2-D, levels."""
+"""Tests of ibprep.tagging.classify: exact tags, tie-breaking, interface layers, stepping, 2-D, levels."""
 
 import warnings
 
@@ -8,7 +8,7 @@ from conftest import apply_pose, box_mesh, octahedron_mesh, rigid_pose, sphere_m
 from scipy import ndimage
 
 from ibprep import CellTag, Grid, IbprepWarning, InputError, refine
-from ibprep.classify import Transition, classify, classify_levels, label_bodies, step_tags, surface_components
+from ibprep.tagging.classify import Transition, classify, classify_levels, label_bodies, step_tags, surface_components
 
 # Centres closer to the surface than this many cell sizes may legitimately differ
 # from an independent oracle (round-off in either code); 1e-9 h.
@@ -155,7 +155,7 @@ def test_orientation_predicate_is_exact_on_near_degenerate_input():
     # floating-point determinant alone gets the sign wrong.
     from fractions import Fraction as F
 
-    from ibprep.classify import _orient_sign
+    from ibprep.tagging.classify import _orient_sign
 
     rng = np.random.default_rng(3)
     n = 3000

@@ -1,4 +1,4 @@
-"""Tests of the compiled crossing enumeration and incremental stepping of ibprep.classify.
+"""Tests of the compiled crossing enumeration and incremental stepping of ibprep.tagging.classify.
 
 The compiled kernels are held to their numpy twins in the same module (the
 project's own reference paths); the stepping results are held to two full
@@ -12,7 +12,7 @@ import pytest
 from conftest import apply_pose, box_mesh, rigid_pose, sphere_mesh, torus_mesh, wing_mesh
 
 from ibprep import CellTag, Grid, IbprepWarning, InputError
-from ibprep.classify import (
+from ibprep.tagging.classify import (
     _axes3,
     _changed_cells,
     _changed_runs,
@@ -113,7 +113,7 @@ def test_compiled_crossings_on_a_2d_grid_equal_the_numpy_path():
     grid = Grid(lower=(0, 0), upper=(1, 1), spacing=1 / 50)
     th = np.linspace(0, 2 * np.pi, 41)[:-1]
     loop = np.column_stack([0.5 + 0.3 * np.cos(th), 0.45 + 0.2 * np.sin(th)])
-    from ibprep.triangles import as_triangles
+    from ibprep.geometry.triangles import as_triangles
 
     v, f = as_triangles(loop)
     axes = _axes3(grid)
@@ -194,7 +194,7 @@ def test_crossings_grouped_by_row_on_a_2d_grid_and_off_the_grid():
     grid = Grid(lower=(0, 0), upper=(1, 1), spacing=1 / 50)
     th = np.linspace(0, 2 * np.pi, 41)[:-1]
     loop = np.column_stack([0.5 + 0.3 * np.cos(th), 0.45 + 0.2 * np.sin(th)])
-    from ibprep.triangles import as_triangles
+    from ibprep.geometry.triangles import as_triangles
 
     v, f = as_triangles(loop)
     axes, shape3 = _axes3(grid), (*grid.shape, 1)
@@ -410,7 +410,7 @@ def test_step_of_an_open_surface_warns_like_classify():
 
 @pytest.mark.parametrize("interface", ["fluid-side", "solid-side"])
 def test_compiled_retag_equals_the_numpy_path(interface):
-    from ibprep.classify import _retag, _retag_compiled
+    from ibprep.tagging.classify import _retag, _retag_compiled
 
     grid = Grid(lower=(-1, -1, -1), upper=(1, 1, 1), spacing=1 / 20)
     a = _mesh("torus", 3)

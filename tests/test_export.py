@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 
 from ibprep import Grid
-from ibprep.export import write_tags_vtu, write_time_series
+from ibprep.io.export import write_tags_vtu, write_time_series
 from ibprep.files import atomic_write
 
 
@@ -59,7 +59,7 @@ def test_written_files_get_the_usual_permissions(tmp_path):
 def test_motion_plot_shows_the_roll_stroke_when_there_is_one(tmp_path, monkeypatch, roll_deg, labels):
     import math
 
-    import ibprep.export as ex
+    import ibprep.io.export as ex
     from ibprep import Motion
 
     seen = {}

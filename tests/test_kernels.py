@@ -1,8 +1,8 @@
-"""Tests for ibprep.kernels: the compiled kernels against the numpy paths they replace.
+"""Tests for ibprep.stencils.kernels: the compiled kernels against the numpy paths they replace.
 
 The reference for every check here is this project's own numpy implementation
-(ibprep.proximity.TriangleIndex.segments_cross_fan / .closest, and
-ibprep.stencils._wls_value_weights), which test_proximity.py and test_stencils.py
+(ibprep.stencils.proximity.TriangleIndex.segments_cross_fan / .closest, and
+ibprep.stencils.build._wls_value_weights), which test_proximity.py and test_stencils.py
 check against trimesh, libigl and published formulas. Booleans and indices must be
 equal; floats equal bit for bit where the kernel reproduces the numpy expression
 order, else within the named tolerances below.
@@ -13,9 +13,10 @@ import numpy as np
 import pytest
 import trimesh
 
-from ibprep import Grid, kernels, proximity
-from ibprep.proximity import TriangleIndex
-from ibprep.triangles import extrude_loops
+from ibprep import Grid
+from ibprep.stencils import kernels, proximity
+from ibprep.stencils.proximity import TriangleIndex
+from ibprep.geometry.triangles import extrude_loops
 
 
 def _sphere():
@@ -71,7 +72,7 @@ def test_dot3_matches_einsum():
 
 
 def test_constants_match_numpy_modules():
-    from ibprep import stencils
+    from ibprep.stencils import build as stencils
 
     assert kernels._BARY_SLACK == proximity._BARY_SLACK
     assert (kernels._FACE, kernels._VA, kernels._EAB, kernels._ECA) == (
@@ -196,10 +197,10 @@ def test_closest_with_region_box_and_empty_input():
 def _stencil_calls(monkeypatch, case):
     """Run build_stencils on a small sphere (3-D) or circle (2-D) and record the arguments of the hot calls."""
     from ibprep import build_stencils
-    from ibprep.classify import CellTag
+    from ibprep.tagging.classify import CellTag
     from scipy import ndimage
 
-    from ibprep import stencils
+    from ibprep.stencils import build as stencils
 
     calls = {"fan": [], "closest": []}
     fan0 = TriangleIndex.segments_cross_fan
@@ -255,7 +256,7 @@ def test_kernels_on_the_stencil_builders_own_calls(monkeypatch, case):
 
 
 def _design(seed, n=400, k=30, planar=False, pad=5):
-    from ibprep import stencils
+    from ibprep.stencils import build as stencils
 
     rng = np.random.default_rng(seed)
     xi = rng.uniform(-3, 3, (n, k + 1, 2 if planar else 3))
@@ -275,7 +276,7 @@ WLS_COND_RTOL = 1e-9
 @pytest.mark.parametrize("planar", [False, True])
 def test_wls_value_weights_match_lapack_path(planar):
     # Reference: stencils._wls_value_weights (numpy.linalg.qr / eigvalsh / solve, i.e. LAPACK).
-    from ibprep import stencils
+    from ibprep.stencils import build as stencils
 
     A, sw = _design(3, planar=planar)
     a0, c0 = stencils._wls_value_weights(A, sw)
@@ -291,7 +292,7 @@ def test_wls_value_weights_match_lapack_path(planar):
 
 
 def test_wls_value_weights_rank_deficient_and_too_few_rows():
-    from ibprep import stencils
+    from ibprep.stencils import build as stencils
 
     A, sw = _design(4, n=60)
     A[:20, :, 4] = A[:20, :, 1]  # two equal columns: rank deficient
@@ -371,7 +372,7 @@ def test_rank_one_extremes_match_lapack():
 
 
 def _tagged(solid, ghost):
-    from ibprep.classify import CellTag
+    from ibprep.tagging.classify import CellTag
     from scipy import ndimage
 
     tags = np.full(solid.shape, CellTag.FLUID, np.uint8)
@@ -460,7 +461,8 @@ def test_compiled_stencil_pass_equals_array_pipeline(monkeypatch, case):
     # Reference: the project's own array pipeline (stencils._fit_arrays, whose fan, closest-point
     # and WLS steps are held to numpy/LAPACK above). Integer results must be equal; weights and
     # figures agree to round-off (the exp of numba and numpy may differ in the last bit).
-    from ibprep import build_stencils, stencils
+    from ibprep import build_stencils
+    from ibprep.stencils import build as stencils
 
     name, tags, grid, surface, kw = case
     seen = []
@@ -501,7 +503,7 @@ def test_symmetry_frames_of_neighbour_sets(planar):
     # Reference: the definition of the canonical frame (kernels._PERMS): T maps offset o to
     # (sign_j * o[perm_j])_j, and the frame chosen for a set makes its offset sum non-negative
     # and non-increasing along the axes (common practice for canonical forms, no single source).
-    from ibprep.stencils import _offsets
+    from ibprep.stencils.build import _offsets
 
     offs = _offsets(3.5, planar)
     smap, perm, sign = kernels._symmetry_tables(offs)

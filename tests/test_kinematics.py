@@ -1,4 +1,4 @@
-"""Tests of ibprep.kinematics: prescribed rigid motion and the case's non-dimensional numbers.
+"""Tests of ibprep.motion.kinematics: prescribed rigid motion and the case's non-dimensional numbers.
 
 Reference values come from /work/shared/REFERENCES.md; each check names the
 section and carries its confidence tag. Frames: body x along the chord from the
@@ -14,7 +14,7 @@ from hypothesis import strategies as st
 from scipy.spatial.transform import Rotation
 
 from ibprep.errors import InputError
-from ibprep.kinematics import (
+from ibprep.motion.kinematics import (
     FlowNumbers,
     Motion,
     Sine,

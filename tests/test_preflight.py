@@ -131,7 +131,7 @@ def test_tandem_pair_too_close_fails_the_gap_check():
 
 def test_a_value_just_past_its_limit_never_prints_as_the_limit():
     # A warning that read "1.99 -> '2' chords, below the common-practice 2" contradicted itself.
-    from ibprep.preflight import _above, _below, _near
+    from ibprep.checks.preflight import _above, _below, _near
 
     assert _near(1.9987, 2.0) == "1.999"
     assert _near(4.99996, 5.0) == "4.99996"
@@ -147,7 +147,7 @@ def test_a_value_just_past_its_limit_never_prints_as_the_limit():
 
 def test_one_chord_or_cell_is_singular():
     # A 2-D case of our own printed "the finest box reaches 1 chords behind the swept body".
-    from ibprep.preflight import _below, _counted
+    from ibprep.checks.preflight import _below, _counted
 
     assert _counted("1", "chords") == "1 chord"
     assert _counted("1.02", "chords") == "1.02 chords"

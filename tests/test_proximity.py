@@ -1,4 +1,4 @@
-"""Tests for ibprep.proximity: closest points, pseudo-normals, segment crossings."""
+"""Tests for ibprep.stencils.proximity: closest points, pseudo-normals, segment crossings."""
 
 import igl
 import numpy as np
@@ -6,7 +6,7 @@ import pytest
 import trimesh
 
 from ibprep import InputError
-from ibprep.proximity import TriangleIndex, closest_point_on_triangles, segments_cross_triangles
+from ibprep.stencils.proximity import TriangleIndex, closest_point_on_triangles, segments_cross_triangles
 
 # Distances agree with the reference to this (metres, bodies of size ~1): round-off only.
 DIST_TOL = 1e-12
@@ -125,7 +125,7 @@ def test_compiled_index_tables_equal_the_numpy_construction(case, monkeypatch):
     # _surface_tables_numpy); the compiled one must give the same pieces, witnesses,
     # buckets and face and edge normals bit for bit, and the vertex pseudo-normals to
     # round-off (math.acos and numpy's arccos may differ in the last bit).
-    from ibprep import proximity
+    from ibprep.stencils import proximity
 
     region = {}
     if case == "annulus":
@@ -225,7 +225,7 @@ def test_fan_crossing_agrees_with_plain_crossing():
 @pytest.mark.parametrize("bad", [-1, 10_000])
 def test_face_indices_out_of_range_are_refused(bad):
     # The compiled surface kernels index without bounds checks: bad faces must be refused first.
-    from ibprep.proximity import median_edge_length
+    from ibprep.stencils.proximity import median_edge_length
 
     m = trimesh.creation.icosphere(subdivisions=1)
     f = m.faces.copy()
@@ -240,7 +240,7 @@ def test_surface_tables_at_a_vertex_of_high_degree(monkeypatch):
     # A closed double cone whose two apexes each touch 3000 faces (fan caps of a fine
     # cylinder look alike). Reference: the numpy construction (_surface_tables_numpy);
     # the edge grouping must stay exact (and linear: it is a pair of counting sorts).
-    from ibprep import proximity
+    from ibprep.stencils import proximity
 
     n = 3000
     a = np.linspace(0, 2 * np.pi, n, endpoint=False)

@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 
 from ibprep import Grid, Motion
-from ibprep.case import CheckLimits
-from ibprep.sizing import propose_boxes, required_spacing, resolution_lengths, swept_envelope
+from ibprep.io.case import CheckLimits
+from ibprep.checks.sizing import propose_boxes, required_spacing, resolution_lengths, swept_envelope
 
 
 def _box(lo, hi):

@@ -1,8 +1,8 @@
-"""Tests for ibprep.stencils: WLS quadratic stencils for interface cells.
+"""Tests for ibprep.stencils.build: WLS quadratic stencils for interface cells.
 
 Tags are built here by an independent helper (libigl winding number at the cell
 centres, interface = cells of the chosen side with a face neighbour on the other
-side, scipy.ndimage), so these tests do not depend on ibprep.classify.
+side, scipy.ndimage), so these tests do not depend on ibprep.tagging.classify.
 """
 
 import math
@@ -14,8 +14,8 @@ import trimesh
 from scipy import ndimage
 
 from ibprep import Grid, InputError
-from ibprep.classify import CellTag
-from ibprep.stencils import StencilLimits, Stencils, build_stencils, load_stencils
+from ibprep.tagging.classify import CellTag
+from ibprep.stencils.build import StencilLimits, Stencils, build_stencils, load_stencils
 
 # Round-off tolerance of quadratic reproduction: values are O(1), stencils have
 # ~30 weights of O(0.1-1) and condition numbers below ~20, so 1e-12 leaves three
@@ -126,7 +126,7 @@ def _circle_loop(radius=1.0, n=400):
 
 
 def _circle_case(cells_per_radius, interface="fluid-side"):
-    from ibprep.triangles import as_triangles
+    from ibprep.geometry.triangles import as_triangles
 
     R = 1.0
     h = R / cells_per_radius
@@ -158,8 +158,10 @@ def test_single_layer_3d_grid_fits_in_plane():
     L = R + 6 * h
     grid = Grid(lower=(-L, -L, -h / 2), upper=(L, L, h / 2), spacing=h)
     assert grid.is_planar
+    from ibprep.geometry.triangles import as_triangles
+
     loop = _circle_loop(R)
-    tags = _tags_from_surface(grid, *__import__("ibprep").triangles.as_triangles(loop))
+    tags = _tags_from_surface(grid, *as_triangles(loop))
     st = build_stencils(tags, grid, loop, bc="neumann")
     assert st.ok.all()
     assert (st.n_visible <= 18).all()  # at most 3 x 6 kept: the planar basis sized the stencil
@@ -272,7 +274,7 @@ def test_degenerate_3d_block_flagged():
     assert not st.ok[0]
     assert st.condition[0] > 1e12  # 9 rows for 10 unknowns: rank deficient
     xi = grid.unflat_index(st.neighbours[0][st.neighbours[0] >= 0]) - np.array([2, 3, 3])
-    from ibprep.stencils import _basis
+    from ibprep.stencils.build import _basis
 
     assert np.linalg.matrix_rank(_basis(xi.astype(float), planar=False)) == 7
 
@@ -288,7 +290,7 @@ def test_degenerate_2d_block_flagged():
     assert len(st) == 1 and st.n_visible[0] == 6
     assert not st.ok[0]
     xi = grid.unflat_index(st.neighbours[0][st.neighbours[0] >= 0]) - np.array([3, 4])
-    from ibprep.stencils import _basis
+    from ibprep.stencils.build import _basis
 
     assert np.linalg.matrix_rank(_basis(xi.astype(float), planar=True)) == 5
 
@@ -481,7 +483,7 @@ def test_batched_solve_matches_numpy_pinv_and_cond():
     # Reference library: numpy.linalg.pinv (row 0 of the weighted pseudo-inverse) and
     # numpy.linalg.cond (2-norm) on random scaled designs; cond taken from R^T R is
     # accurate to a few digits in this range (cond ~ 10-1e3).
-    from ibprep.stencils import _basis, _wls_value_weights
+    from ibprep.stencils.build import _basis, _wls_value_weights
 
     rng = np.random.default_rng(7)
     xi = rng.uniform(-2.5, 2.5, (50, 25, 3))

@@ -317,7 +317,7 @@ def test_thin_band_of_a_2d_prism_measures_the_section_perimeter():
     # (elementary geometry; common practice, no single source). Examining a band of the walls
     # about z = 0 gives the thin fraction of the perimeter, 2L / (2L + 2t), and the exact
     # thickness; the deep caps never count.
-    from ibprep.triangles import extrude_loops
+    from ibprep.geometry.triangles import extrude_loops
 
     L, t, limit = 1.0, 0.02, 0.05
     strip = np.array([[0.0, -t / 2], [L, -t / 2], [L, t / 2], [0.0, t / 2]])

@@ -7,7 +7,7 @@ import pytest
 
 from cases import SMALL_CASE
 from ibprep import IbprepError, InputError, Motion, parse_case, preflight, sweep
-from ibprep.sweep import chunk_instants
+from ibprep.checks.sweep import chunk_instants
 
 
 def _report_json(**kw):
@@ -32,7 +32,7 @@ def test_split_into_chunks_gives_identical_steps(serial):
     # Each chunk restarts its incremental state with a full tagging: results must not change.
     _, rep = serial
     case = parse_case(SMALL_CASE)
-    from ibprep.preflight import check_instants
+    from ibprep.checks.preflight import check_instants
 
     t = check_instants(case)
     grid = case.grid.levels[rep.figures["resolution"]["level_at_body"]]
@@ -127,7 +127,7 @@ def test_default_chunks_report_progress_every_few_instants(monkeypatch):
     # not once at the end; the steps are the same as in one chunk.
     import importlib
 
-    sw = importlib.import_module("ibprep.sweep")  # the module (ibprep.sweep is also the function)
+    sw = importlib.import_module("ibprep.checks.sweep")  # the module (ibprep.sweep is the function)
     monkeypatch.setattr(sw, "_CHUNK_STEPS", 4)
     case = parse_case(SMALL_CASE)
     t = np.arange(10) * case.time.step
@@ -139,7 +139,7 @@ def test_default_chunks_report_progress_every_few_instants(monkeypatch):
 
 _ORPHAN_SCRIPT = r"""
 import concurrent.futures as cf, multiprocessing as mp, os, sys, time
-from ibprep.sweep import _watch_parent
+from ibprep.checks.sweep import _watch_parent
 
 if __name__ == "__main__":
     with cf.ProcessPoolExecutor(1, mp_context=mp.get_context("spawn"), initializer=_watch_parent,

@@ -30,7 +30,7 @@ from dataclasses import dataclass, field
 import numba
 import numpy as np
 
-from .errors import InputError
+from ..errors import InputError
 
 __all__ = [
     "TriangleIndex",

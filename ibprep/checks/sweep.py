@@ -28,11 +28,11 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .classify import CellTag, classify, step_tags
-from .errors import IbprepError, InputError
-from .grid import Grid
-from .stencils import StencilLimits, build_stencils
-from .triangles import as_triangles, transform_points
+from ..tagging.classify import CellTag, classify, step_tags
+from ..errors import IbprepError, InputError
+from ..grid import Grid
+from ..stencils.build import StencilLimits, build_stencils
+from ..geometry.triangles import as_triangles, transform_points
 
 __all__ = ["StepResult", "SweepTask", "run_chunk", "sweep", "chunk_instants"]
 
@@ -180,7 +180,7 @@ def run_chunk(task: SweepTask) -> list[StepResult]:
     """
     import warnings
 
-    from .errors import IbprepWarning
+    from ..errors import IbprepWarning
 
     grid = task.grid
     out = []

@@ -72,9 +72,9 @@ from llvmlite import ir as _llvm_ir
 from numba.core import types as _nb_types
 from numba.extending import intrinsic as _nb_intrinsic
 
-from .errors import IbprepWarning, InputError
-from .grid import Grid, NestedGrid
-from .triangles import as_triangles
+from ..errors import IbprepWarning, InputError
+from ..grid import Grid, NestedGrid
+from ..geometry.triangles import as_triangles
 
 __all__ = ["CellTag", "Transition", "classify", "classify_levels", "label_bodies", "step_tags", "surface_components"]
 
@@ -1022,7 +1022,7 @@ def classify(surface_in_world, grid: Grid, *, interface: str = "fluid-side") -> 
 
     Parameters
     ----------
-    surface_in_world : closed surface — anything :func:`ibprep.triangles.as_triangles`
+    surface_in_world : closed surface — anything :func:`ibprep.geometry.triangles.as_triangles`
         accepts (a ``trimesh.Trimesh``, a ``(vertices, faces)`` pair in metres, world
         frame; for a 2-D grid also a closed polygon, treated in the plane z = 0).
         Several disjoint or overlapping closed bodies may be given as one surface.
@@ -1106,7 +1106,7 @@ def surface_components(surface) -> tuple[np.ndarray, int]:
 
     Parameters
     ----------
-    surface : closed surface — anything :func:`ibprep.triangles.as_triangles` accepts.
+    surface : closed surface — anything :func:`ibprep.geometry.triangles.as_triangles` accepts.
 
     Returns
     -------

@@ -23,10 +23,10 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
-from .case import Case
-from .errors import InputError
+from ..io.case import Case
+from ..errors import InputError
 from .sizing import resolution_lengths, swept_envelope
-from .stencils import StencilLimits
+from ..stencils.build import StencilLimits
 
 __all__ = ["Check", "Report", "preflight", "CAUTION", "check_instants", "STATUSES"]
 
@@ -83,7 +83,7 @@ class Report:
     figures : dict — non-dimensional numbers, cell counts, time step, worst stencils.
     caution : str — :data:`CAUTION`.
     title : str — the case title.
-    steps : tuple — per-step figures (:class:`~ibprep.sweep.StepResult`), for plots.
+    steps : tuple — per-step figures (:class:`~ibprep.checks.sweep.StepResult`), for plots.
     """
 
     verdict: str
@@ -209,7 +209,7 @@ def _surface_checks(case: Case, h_body: float, figures: dict) -> list[Check]:
 
 
 def _body_surface_checks(case: Case, mesh, h_body: float, figures: dict) -> list[Check]:
-    from .geometry import check_surface, thin_regions
+    from ..geometry import check_surface, thin_regions
 
     rep = check_surface(mesh)
     figures.update({"faces": rep.n_faces, "pieces": rep.n_bodies, "area_m2": rep.area, "volume_m3": rep.volume})
@@ -424,7 +424,7 @@ def preflight(case: Case, *, all_steps: bool | None = None, workers: int = 1, sc
     -------
     Report
     """
-    from .kinematics import flow_numbers
+    from ..motion.kinematics import flow_numbers
     from .sweep import sweep
 
     if not isinstance(case, Case):
@@ -585,7 +585,7 @@ def _gap_checks(case: Case, env, h: float, figures: dict) -> list[Check]:
     """
     from scipy.spatial import cKDTree
 
-    from .geometry import surface_markers
+    from ..geometry import surface_markers
 
     lim = case.checks
     markers = [surface_markers(b.surface, 0.5 * h)[0] for b in case.bodies]

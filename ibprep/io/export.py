@@ -12,9 +12,9 @@ from pathlib import Path
 
 import numpy as np
 
-from .classify import CellTag
-from .errors import InputError
-from .files import atomic_write
+from ..tagging.classify import CellTag
+from ..errors import InputError
+from ..files import atomic_write
 
 __all__ = [
     "write_json_report",

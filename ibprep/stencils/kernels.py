@@ -3,10 +3,10 @@
 Each function here takes the same inputs and returns the same outputs as the
 numpy method it stands in for, so a call site switches with a one-line change:
 
-* :func:`segments_cross_fan` — :meth:`ibprep.proximity.TriangleIndex.segments_cross_fan`
-* :func:`closest` — :meth:`ibprep.proximity.TriangleIndex.closest`
-* :func:`wls_value_weights` — ``ibprep.stencils._wls_value_weights``
-* :func:`stencil_fits` — ``ibprep.stencils._fit_arrays``: candidates,
+* :func:`segments_cross_fan` — :meth:`ibprep.stencils.proximity.TriangleIndex.segments_cross_fan`
+* :func:`closest` — :meth:`ibprep.stencils.proximity.TriangleIndex.closest`
+* :func:`wls_value_weights` — ``ibprep.stencils.build._wls_value_weights``
+* :func:`stencil_fits` — ``ibprep.stencils.build._fit_arrays``: candidates,
   visibility (the fan test's row function) and the WLS solve of every stencil
   in one pass, which the builder uses; the three above remain for the array
   pipeline and as tested building blocks.
@@ -46,7 +46,7 @@ __all__ = ["segments_cross_fan", "closest", "wls_value_weights", "stencil_fits",
 
 _JIT = dict(cache=True, nogil=True, fastmath=False, error_model="numpy")
 
-# Same constants as ibprep.proximity / ibprep.stencils (kept equal by tests/test_kernels.py).
+# Same constants as ibprep.stencils.proximity / ibprep.stencils.build (kept equal by tests/test_kernels.py).
 _BARY_SLACK = 1e-12
 _FACE, _VA, _VB, _VC, _EAB, _EBC, _ECA = range(7)
 _RANK_RTOL = 1e-13
@@ -283,7 +283,7 @@ def _fan_kernel(o, e, valid, reach, grid_origin, s, dims, cstart, ccount, citems
 def segments_cross_fan(index, origins, ends, valid, reach: float) -> np.ndarray:
     """Whether segments fanning out from one origin per row cross the surface.
 
-    Compiled equivalent of :meth:`ibprep.proximity.TriangleIndex.segments_cross_fan`
+    Compiled equivalent of :meth:`ibprep.stencils.proximity.TriangleIndex.segments_cross_fan`
     (same screens, same exact test, same result).
 
     Parameters
@@ -457,7 +457,7 @@ def _closest_kernel(p, grid_origin, s, dims, q_max, max_distance, bstart, bcount
 def closest(index, points, *, max_distance: float = math.inf) -> ClosestPoints:
     """Closest surface point, distance and outward pseudo-normal of each point.
 
-    Compiled equivalent of :meth:`ibprep.proximity.TriangleIndex.closest`: the
+    Compiled equivalent of :meth:`ibprep.stencils.proximity.TriangleIndex.closest`: the
     same ring-by-ring bucket search, witness/sphere screens, tie-breaking (the
     first closest triangle in bucket order) and lower-bound mode.
 
@@ -829,7 +829,7 @@ def _wls_kernel(A, sw):
 def wls_value_weights(A, sw):
     """Weights of the data in the least-squares value at the origin, and the condition.
 
-    Compiled equivalent of ``ibprep.stencils._wls_value_weights``: Householder QR
+    Compiled equivalent of ``ibprep.stencils.build._wls_value_weights``: Householder QR
     of diag(sw) A per stencil, the value weights from R and the reflectors, the
     condition number from the extreme eigenvalues of R^T R (tridiagonal reduction and
     implicit QL) with the same
@@ -856,12 +856,12 @@ def wls_value_weights(A, sw):
 
 # ------------------------------------------------------- whole stencils
 _WEIGHT_CODES = {"gaussian": 0, "inverse-distance": 1, "wendland": 2}
-_IDW_EPS2 = 1.0 / 16.0  # as ibprep.stencils
+_IDW_EPS2 = 1.0 / 16.0  # as ibprep.stencils.build
 
 
 @numba.njit(**_JIT)
 def _weight_of(rho, support, kind):
-    """As ibprep.stencils._weight, for one scaled distance."""
+    """As ibprep.stencils.build._weight, for one scaled distance."""
     if kind == 0:
         t = 2.0 * rho / support
         return math.exp(-(t * t))
@@ -874,7 +874,7 @@ def _weight_of(rho, support, kind):
 
 @numba.njit(**_JIT)
 def _basis_row(x, y, z, planar, out):
-    """Quadratic monomials at scaled (x, y, z), in the order of ibprep.stencils._basis."""
+    """Quadratic monomials at scaled (x, y, z), in the order of ibprep.stencils.build._basis."""
     out[0] = 1.0
     out[1] = x
     out[2] = y
@@ -894,7 +894,7 @@ def _basis_row(x, y, z, planar, out):
 
 @numba.njit(**_JIT)
 def _normal_derivative_row(x, y, z, nx, ny, nz, planar, out):
-    """Derivative of each monomial along n, in the order of ibprep.stencils._basis_normal_derivative."""
+    """Derivative of each monomial along n, in the order of ibprep.stencils.build._basis_normal_derivative."""
     out[0] = 0.0
     out[1] = nx
     out[2] = ny
@@ -1696,7 +1696,7 @@ def stencil_fits(tags, shape3, lower3, h, cells, anchor, origin, centre, allowed
                  kmax, *, image, neumann, planar, weight, index, boundary=None, two_d=False, nudge=0.0):
     """Neighbours, visibility and WLS fit of every stencil in one compiled pass.
 
-    The whole middle of :func:`ibprep.stencils.build_stencils` for one cell at a
+    The whole middle of :func:`ibprep.stencils.build.build_stencils` for one cell at a
     time: the boundary point (unless given), candidate cells from the sorted
     offsets, round by round up to the radii; the segment test of
     :func:`segments_cross_fan` against the surface pieces near the origin; the

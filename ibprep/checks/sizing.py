@@ -14,9 +14,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .errors import InputError
-from .grid import Grid, NestedGrid, refine
-from .triangles import as_triangles
+from ..errors import InputError
+from ..grid import Grid, NestedGrid, refine
+from ..geometry.triangles import as_triangles
 
 __all__ = [
     "Envelope",

@@ -44,7 +44,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import InputError
+from ..errors import InputError
 
 __all__ = [
     "Waveform",

@@ -48,7 +48,7 @@ Choices (documented defaults)
   ratio of its extreme singular values, taken from the eigenvalues of R^T R
   (accurate to a few digits up to ~1e6; above ~1e7 it is reported as inf).
 * Candidates, visibility and the fit run as one compiled pass over the cells
-  (:func:`ibprep.kernels.stencil_fits`). ``_fit_arrays`` does the same with
+  (:func:`ibprep.stencils.kernels.stencil_fits`). ``_fit_arrays`` does the same with
   batched arrays over all stencils, calling the fan crossing test and the WLS
   solve as separate kernels (each held to its numpy/LAPACK twin); it is the
   reference the compiled pass's candidate selection, boundary points and row
@@ -84,15 +84,15 @@ from pathlib import Path
 
 import numpy as np
 
-from .classify import CellTag
-from .errors import InputError
-from .files import atomic_write
-from .grid import Grid
+from ..tagging.classify import CellTag
+from ..errors import InputError
+from ..files import atomic_write
+from ..grid import Grid
 from .kernels import closest as _closest, segments_cross_fan as _segments_cross_fan, stencil_fits as _stencil_fits
 from .kernels import cells_tagged as _cells_tagged
 from .kernels import wls_value_weights as _wls_kernel
 from .proximity import TriangleIndex, median_edge_length
-from .triangles import _loops_from, as_triangles
+from ..geometry.triangles import _loops_from, as_triangles
 
 __all__ = ["Stencils", "StencilLimits", "StencilSummary", "build_stencils", "load_stencils"]
 
@@ -652,7 +652,7 @@ def build_stencils(
     grid : Grid — the grid the tags live on (2-D, 3-D or single-layer 3-D).
     surface_in_world : trimesh.Trimesh, (vertices, faces) or 2-D loops — the
         closed body surface in world coordinates, metres (see
-        :func:`ibprep.triangles.as_triangles`).
+        :func:`ibprep.geometry.triangles.as_triangles`).
     bc : {"dirichlet", "neumann"} — the boundary condition imposed at the boundary point.
     interface : {"fluid-side", "solid-side"} — whether interface cells are fluid
         (fluid cells next to solid) or solid (ghost cells next to fluid).
@@ -839,7 +839,7 @@ _COMPILED = True
 
 def _fit_compiled(flat_tags, shape3, lower3, h, cells, anchor, origin, centre, bpt, nrm, allowed, radii, opts,
                   planar, two_d, index, centres_of):
-    """Neighbours and fit of every stencil in one compiled pass (ibprep.kernels.stencil_fits).
+    """Neighbours and fit of every stencil in one compiled pass (ibprep.stencils.kernels.stencil_fits).
 
     With bpt and nrm None the pass finds the boundary points too (fluid-side cells,
     whose origin is the centre unless it lies on the surface).

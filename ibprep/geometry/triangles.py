@@ -12,7 +12,7 @@ import os
 
 import numpy as np
 
-from .errors import InputError
+from ..errors import InputError
 
 __all__ = ["as_triangles", "transform_points", "extrude_loops", "triangle_bounds"]
 

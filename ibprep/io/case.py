@@ -25,8 +25,8 @@ from typing import Any
 
 import numpy as np
 
-from .errors import InputError
-from .grid import Grid, NestedGrid, refine
+from ..errors import InputError
+from ..grid import Grid, NestedGrid, refine
 
 __all__ = ["Case", "BodyCase", "BodySpec", "FlowSpec", "TimeSpec", "CheckLimits", "SizingSpec", "KEYS", "load_case", "parse_case"]
 
@@ -457,7 +457,7 @@ class Case:
 
     def world_surface(self, t: float) -> tuple[np.ndarray, np.ndarray]:
         """All bodies at time ``t`` as one surface: vertices (n, 3) float, metres, world frame; faces (m, 3) int."""
-        from .triangles import transform_points
+        from ..geometry.triangles import transform_points
 
         verts, faces, offset = [], [], 0
         for b in self.bodies:
@@ -501,14 +501,14 @@ class BodyCase:
         return mesh
 
     def _body_frame_surface(self):
-        from .geometry import load_surface, make_wing, naca4
+        from ..geometry import load_surface, make_wing, naca4
 
         b = self.spec
         if b.surface is not None:
             return load_surface(b.surface, scale=b.scale)
         if b.planar:
-            from .geometry.surface import mesh_from_arrays
-            from .triangles import extrude_loops
+            from ..geometry.surface import mesh_from_arrays
+            from ..geometry.triangles import extrude_loops
 
             sec = naca4(b.section, closed_te=b.closed_te)
             loop = np.column_stack([np.asarray(sec.x), np.asarray(sec.y)]) * b.chord
@@ -522,7 +522,7 @@ class BodyCase:
     @cached_property
     def section(self):
         """The NACA section of a generated body, or None for a surface file."""
-        from .geometry import naca4
+        from ..geometry import naca4
 
         return naca4(self.spec.section, closed_te=self.spec.closed_te) if self.spec.section else None
 
@@ -581,7 +581,7 @@ def _body_spec(b: dict, planar: bool, base: Path | None, label: str) -> BodySpec
     else:
         if b["span"] is None and not planar:
             raise InputError(f"[{label}] span is missing: a wing built from a section needs its span in metres")
-        from .geometry import naca4
+        from ..geometry import naca4
 
         try:
             naca4(b["section"])  # validate the code now, naming the key on failure
@@ -596,7 +596,7 @@ def _body_spec(b: dict, planar: bool, base: Path | None, label: str) -> BodySpec
 
 def _motion(m: dict, offset, planar: bool, base: Path | None, label: str):
     """The body's Motion, with pivot and stroke root moved by the body's offset (the placed frame)."""
-    from .kinematics import Motion, SmoothSquareWave, load_waveform_table
+    from ..motion.kinematics import Motion, SmoothSquareWave, load_waveform_table
 
     if m["pitch_amplitude_deg"] >= 90.0:
         raise InputError(f"[{label}] pitch_amplitude_deg must be below 90, got {m['pitch_amplitude_deg']!r}")

@@ -1,0 +1,3 @@
+"""Interface stencils: the surface index and closest points, the compiled pass, and the WLS fit (``build``)."""
+
+__all__: list[str] = []
