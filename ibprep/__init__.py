@@ -39,7 +39,7 @@ from .checks.sizing import propose_boxes, swept_envelope
 from .stencils.build import StencilLimits, Stencils, StencilSummary, build_stencils, load_stencils
 from .checks.sweep import StepResult, sweep
 
-__version__ = "0.1.0.dev0"
+from ._version import __version__  # noqa: E402 (one place for the version)
 
 __all__ = [
     "BodyCase",

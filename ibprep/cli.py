@@ -1,15 +1,17 @@
-"""The ``ibprep`` command: demo, check, size, export.
+"""The ``ibprep`` command.
 
 A thin layer: each subcommand has ``add_args(parser)`` and ``run(args) -> int``
 and calls the public API. Exit codes: 0 every check passed (warnings allowed),
 1 at least one check failed, 2 bad input or usage (one message on stderr, no
-traceback; ``--debug`` shows it).
+traceback; ``--debug`` shows it), 3 the run could not finish (an internal error,
+which the message says is a bug, or a lost worker), 130 interrupted.
 """
 
 from __future__ import annotations
 
 import argparse
 import math
+import os
 import sys
 from pathlib import Path
 
@@ -17,7 +19,7 @@ from .errors import IbprepError, InputError
 
 __all__ = ["main"]
 
-EXIT_OK, EXIT_FAILED, EXIT_INPUT = 0, 1, 2
+EXIT_OK, EXIT_FAILED, EXIT_INPUT, EXIT_INTERNAL, EXIT_INTERRUPTED = 0, 1, 2, 3, 130
 
 
 class _Parser(argparse.ArgumentParser):
@@ -25,6 +27,86 @@ class _Parser(argparse.ArgumentParser):
 
     def error(self, message):  # noqa: D401 - argparse API
         raise InputError(f"{self.prog}: {message} (see {self.prog} --help)")
+
+
+class _HelpFormatter(argparse.HelpFormatter):
+    """Shows each option's default in --help where it has a meaningful one."""
+
+    def _get_help_string(self, action):
+        help_ = action.help or ""
+        if "%(default)" in help_ or action.default in (None, False, argparse.SUPPRESS) or not action.option_strings:
+            return help_
+        return help_ + " (default: %(default)s)"
+
+
+# --------------------------------------------------------------------------- output paths
+def _same_file(a: Path, b: Path) -> bool:
+    try:
+        return a.exists() and b.exists() and os.path.samefile(a, b)
+    except OSError:
+        return False
+
+
+def _not_an_input(p: Path, inputs, option: str) -> None:
+    for q in inputs:
+        if q is not None and (_same_file(p, Path(q)) or p.resolve() == Path(q).resolve()):
+            raise InputError(f"{option} {str(p)!r} names an input file ({q}); choose another name so it is not overwritten")
+
+
+def _name_fits(p: Path, option: str) -> None:
+    limit = 255
+    for part in p.parts:
+        if len(part.encode("utf-8", "surrogateescape")) > limit:
+            raise InputError(f"{option}: the name {part[:40]!r}... is longer than the {limit} bytes a file name may have")
+    if len(str(p.absolute()).encode("utf-8", "surrogateescape")) > 4000:
+        raise InputError(f"{option}: the path is longer than the 4000 bytes a path may have here; choose a shorter one")
+
+
+def _probe_folder(folder: Path, option: str) -> None:
+    """Create and remove a file in ``folder``: the one test that also holds for root and read-only mounts."""
+    import tempfile
+
+    try:
+        with tempfile.NamedTemporaryFile(dir=folder, prefix=".ibprep-probe-"):
+            pass
+    except OSError as exc:
+        raise InputError(f"{option}: cannot write into {str(folder)!r}: {exc.strerror or exc}; "
+                         "choose a folder you can write to") from None
+
+
+def _output_file(path, inputs=(), option: str = "--json") -> Path:
+    """Check, before any work, that ``path`` can be written as a file and names no input."""
+    p = Path(path)
+    _name_fits(p, option)
+    if p.is_dir():
+        raise InputError(f"{option} {str(p)!r} is a folder; give a file name")
+    _not_an_input(p, inputs, option)
+    parent = p.parent if str(p.parent) else Path(".")
+    if not parent.is_dir():
+        raise InputError(f"{option}: cannot write {str(p)!r}: its folder does not exist")
+    _probe_folder(parent, option)
+    return p
+
+
+def _output_folder(path, inputs=(), option: str = "--out") -> Path:
+    """Check, before any work, that ``path`` is or can be made a writable folder; make it."""
+    p = Path(path)
+    _name_fits(p, option)
+    if p.exists() and not p.is_dir():
+        raise InputError(f"{option} {str(p)!r} exists and is not a folder")
+    _not_an_input(p, inputs, option)
+    try:
+        p.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise InputError(f"{option}: cannot make the folder {str(p)!r}: {exc.strerror or exc}; "
+                         "choose a place you can write to") from None
+    _probe_folder(p, option)
+    return p
+
+
+def _printable(text: str) -> str:
+    """``text`` with control characters escaped, so a title cannot drive the terminal."""
+    return "".join(ch if ch.isprintable() or ch == " " else ch.encode("unicode_escape").decode("ascii") for ch in text)
 
 
 def _progress(enabled: bool):
@@ -141,7 +223,8 @@ def format_report(report) -> str:
         fig("max interface cells per step", st.get("max_interface_cells"), "{:,}")
         fig("max fresh cells per step", st.get("max_fresh_cells"), "{:,}")
     lines += ["", f"verdict: {report.verdict.upper()}", "", "caution: " + report.caution]
-    return "\n".join(lines)
+    # Titles and body names come from the case file: control characters in them are shown escaped.
+    return "\n".join(_printable(line) for line in "\n".join(lines).split("\n"))
 
 
 # --------------------------------------------------------------------------- check
@@ -167,17 +250,37 @@ def _run_check(args) -> int:
     from .checks.preflight import preflight
 
     case = load_case(args.case)
+    inputs = case.inputs
     if args.json:
-        _writable(args.json)
+        _output_file(args.json, inputs, "--json")
     if args.plots:
-        _folder(args.plots)
+        _output_folder(args.plots, inputs, "--plots")
+    _check_engine_args(args)
     report = _preflight(case, args, preflight)
+    # The verdict first: a file that cannot be written must not lose it.
+    print(format_report(report), flush=True)
+    written = []
     if args.json:
-        write_json_report(report, args.json)
+        written.append(write_json_report(report, args.json))
     if args.plots:
-        _write_plots(case, report, Path(args.plots))
-    print(format_report(report))
+        written += _write_plots(case, report, Path(args.plots))
+    if written:
+        print("")
+        print("files written:")
+        for f in written:
+            print(f"  {f}")
     return EXIT_FAILED if report.verdict == "fail" else EXIT_OK
+
+
+def _check_engine_args(args) -> None:
+    """--workers and --scheduler checked before the sweep starts."""
+    if args.workers < 1:
+        raise InputError(f"--workers must be 1 or more, got {args.workers}")
+    s = args.scheduler
+    if s is not None and s != "local":
+        scheme, sep, rest = s.partition("://")
+        if not sep or scheme not in ("tcp", "tls") or not rest:
+            raise InputError(f"--scheduler takes 'local' or a scheduler address such as tcp://host:8786, got {s!r}")
 
 
 def _preflight(case, args, preflight):
@@ -187,20 +290,6 @@ def _preflight(case, args, preflight):
                          progress=update)
     finally:
         close()
-
-
-def _writable(path):
-    p = Path(path)
-    if not (p.parent if str(p.parent) else Path(".")).is_dir():
-        raise InputError(f"cannot write {str(p)!r}: its folder does not exist")
-
-
-def _folder(path) -> Path:
-    p = Path(path)
-    if p.exists() and not p.is_dir():
-        raise InputError(f"{str(p)!r} exists and is not a folder")
-    p.mkdir(parents=True, exist_ok=True)
-    return p
 
 
 class _WorstStep:
@@ -261,7 +350,7 @@ def _run_size(args) -> int:
     res = propose_boxes(case.grid.base, env, c, target, upstream=s.upstream, lateral=s.lateral, wake=s.wake,
                         buffer_cells=s.buffer_cells, rule=rule)
     ng = res.grid
-    print(f"ibprep size: {case.title or args.case}")
+    print(_printable(f"ibprep size: {case.title or args.case}"))
     print("")
     print("what the body needs:")
     for name, h in per_rule.items():
@@ -305,6 +394,10 @@ def _export_add_args(p):
                    help="tags and stencils are kept in the body's box plus this margin")
 
 
+# More instants than any cycle is checked at; a whole cycle is --at every step's time.
+_MAX_EXPORT_COUNT = 100_000
+
+
 def _run_export(args) -> int:
     import numpy as np
 
@@ -320,10 +413,15 @@ def _run_export(args) -> int:
     what = {w.strip() for w in args.what.split(",") if w.strip()}
     if not what or what - allowed:
         raise InputError(f"--what takes a comma-separated subset of {', '.join(sorted(allowed))}, got {args.what!r}")
-    if args.count < 1:
-        raise InputError(f"--count must be >= 1, got {args.count}")
+    if not 1 <= args.count <= _MAX_EXPORT_COUNT:
+        raise InputError(f"--count must be between 1 and {_MAX_EXPORT_COUNT}, got {args.count}")
+    if not (math.isfinite(args.margin) and args.margin >= 0.0):
+        raise InputError(f"--margin must be a finite number of chords, 0 or more, got {args.margin!r}")
+    if args.at and not all(math.isfinite(t) and t >= 0.0 for t in args.at):
+        bad = next(t for t in args.at if not (math.isfinite(t) and t >= 0.0))
+        raise InputError(f"--at takes times in seconds from 0 on, got {bad!r}")
     case = load_case(args.case)
-    out = _folder(args.out)
+    out = _output_folder(args.out, case.inputs, "--out")
     T = case.motion.period
     times = np.asarray(args.at, float) if args.at else np.arange(args.count) * T / args.count
     env = swept_envelope(case.surfaces, case.motions, case.grid.finest_spacing)
@@ -379,7 +477,8 @@ def _run_export(args) -> int:
 def _demo_add_args(p):
     import os
 
-    p.add_argument("--out", default="ibprep-demo", metavar="DIR", help="folder for the demo's files (default: %(default)s)")
+    p.add_argument("--out", default="ibprep-demo", metavar="DIR", help="folder for the demo's files")
+    p.add_argument("--force", action="store_true", help="write into an --out folder that already holds files")
     _engine_args(p)
     # The demo is a real case (about 2e7 cells at the finest level): use two cores where there are two.
     p.set_defaults(workers=min(2, os.cpu_count() or 1))
@@ -393,10 +492,15 @@ def _run_demo(args) -> int:
     from .geometry import save_surface
     from .checks.preflight import preflight
 
-    out = _folder(args.out)
+    _check_engine_args(args)
+    out = Path(args.out)
+    if out.is_dir() and any(out.iterdir()) and not args.force:
+        raise InputError(f"--out {str(out)!r} already holds files (an earlier demo?); give --force to overwrite "
+                         "them, or choose another --out folder")
+    out = _output_folder(out, (), "--out")
     case_path = atomic_write(out / "case.toml", lambda tmp: Path(tmp).write_text(DEMO_CASE, encoding="utf-8"))
     case = load_case(case_path)
-    print(f"ibprep demo: {case.title}")
+    print(_printable(f"ibprep demo: {case.title}"))
     print(f"  (invented data; case file {case_path})", flush=True)
     args.all_steps = False
     report = _preflight(case, args, preflight)
@@ -435,42 +539,68 @@ _COMMANDS = {
 
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of the ``ibprep`` command."""
+    from ._version import __version__
+
     parser = _Parser(prog="ibprep", description="Prepare and check moving-body cases for sharp-interface "
-                     "immersed-boundary solvers.")
+                     "immersed-boundary solvers.", formatter_class=_HelpFormatter)
     parser.add_argument("--debug", action="store_true", help="show full tracebacks")
+    parser.add_argument("--version", action="version", version=f"ibprep {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     for name, (add_args, run, help_) in _COMMANDS.items():
-        p = sub.add_parser(name, help=help_, description=help_)
+        p = sub.add_parser(name, help=help_, description=help_, formatter_class=_HelpFormatter)
         add_args(p)
         p.set_defaults(run=run)
     return parser
 
 
+def _say(message: str) -> None:
+    print(f"ibprep: {_printable(message)}", file=sys.stderr, flush=True)
+
+
 def main(argv=None) -> int:
-    """Run the ``ibprep`` command; returns the exit code (0 pass, 1 failed checks, 2 bad input)."""
+    """Run the ``ibprep`` command; returns the exit code.
+
+    0 every check passed (warnings allowed), 1 at least one check failed, 2 bad input
+    or usage, 3 the run could not finish (an internal error or a lost worker),
+    130 interrupted.
+    """
     argv = sys.argv[1:] if argv is None else list(argv)
     debug = "--debug" in argv
     try:
         parser = build_parser()
-        if not argv or argv in (["-h"], ["--help"]):
+        if argv in (["-h"], ["--help"]):
             parser.print_help()
-            return EXIT_OK if argv else EXIT_INPUT
+            return EXIT_OK
+        if not argv:
+            raise InputError(f"give a command: {', '.join(_COMMANDS)} (see ibprep --help)")
         args = parser.parse_args(argv)
         if getattr(args, "command", None) is None:
-            raise InputError("ibprep: give a command: demo, check, size or export (see ibprep --help)")
+            raise InputError(f"give a command: {', '.join(_COMMANDS)} (see ibprep --help)")
         return args.run(args)
     except InputError as exc:
         if debug:
             raise
-        print(f"ibprep: error: {exc}", file=sys.stderr)
+        _say(f"error: {exc}")
         return EXIT_INPUT
-    except IbprepError as exc:
+    except IbprepError as exc:  # the run could not finish: a failed or lost worker
         if debug:
             raise
-        print(f"ibprep: error: {exc}", file=sys.stderr)
-        return EXIT_FAILED
-    except SystemExit as exc:  # argparse's --help inside a subcommand
+        _say(f"error: {exc}")
+        return EXIT_INTERNAL
+    except SystemExit as exc:  # argparse's --help and --version
         return int(exc.code or 0)
     except KeyboardInterrupt:
-        print("ibprep: interrupted", file=sys.stderr)
-        return 130
+        _say("interrupted")
+        return EXIT_INTERRUPTED
+    except MemoryError:
+        if debug:
+            raise
+        _say("error: ran out of memory; use a coarser grid, fewer --workers or a machine with more memory "
+             "(rerun with --debug for the traceback)")
+        return EXIT_INTERNAL
+    except Exception as exc:  # noqa: BLE001 - the last resort: a bug, said so
+        if debug:
+            raise
+        _say(f"internal error (a bug in ibprep): {type(exc).__name__}: {exc}; rerun with --debug for the "
+             "traceback and report it")
+        return EXIT_INTERNAL

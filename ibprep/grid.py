@@ -24,7 +24,13 @@ import numpy as np
 
 from .errors import InputError
 
-__all__ = ["Grid", "NestedGrid", "refine", "MemoryEstimate"]
+__all__ = ["Grid", "NestedGrid", "refine", "MemoryEstimate", "MAX_CELLS_PER_LEVEL"]
+
+#: The most cells one grid level may have (2**40, about 1.1e12). Far beyond what
+#: one machine can tag (a byte per cell is 1 TiB), and small enough that every
+#: count and flat index stays exact in int64 and float64. A larger grid is bad
+#: input, refused before anything is allocated.
+MAX_CELLS_PER_LEVEL = 2**40
 
 # An extent is a whole number of cells if it is within this relative distance of
 # one; 2 / (2/115) = 115.00000000000001 passes, 75.5 cells does not.
@@ -47,6 +53,12 @@ def _as_bounds(value, name: str) -> tuple[float, ...]:
 
 def _whole_cells(extent: float, spacing: float, axis: str) -> int:
     n_float = extent / spacing
+    if not n_float <= MAX_CELLS_PER_LEVEL:  # also catches inf and nan: int() would overflow
+        raise InputError(
+            f"grid extent along {axis} ({extent:.6g} m) holds {n_float:.3g} cells of spacing {spacing:.6g} m, "
+            f"more than the {MAX_CELLS_PER_LEVEL:.3g} cells a level may have; check the units of the bounds "
+            "and the spacing"
+        )
     n = int(round(n_float))
     if n < 1 or abs(n_float - n) > _WHOLE_CELLS_RTOL * max(1.0, n_float):
         lo = max(1, math.floor(n_float))
@@ -103,6 +115,13 @@ class Grid:
             if not hi > lo:
                 raise InputError(f"grid upper {axis} ({hi:.6g}) must exceed lower {axis} ({lo:.6g})")
             shape.append(_whole_cells(hi - lo, h, axis))
+        cells = math.prod(shape)  # Python ints: no wrap-around
+        if cells > MAX_CELLS_PER_LEVEL:
+            raise InputError(
+                f"grid of {' x '.join(map(str, shape))} = {cells:.3g} cells at spacing {h:.6g} m is more than the "
+                f"{MAX_CELLS_PER_LEVEL:.3g} cells a level may have ({cells / 2**40:.3g} TiB at one byte a cell); "
+                "use a coarser spacing or a smaller domain"
+            )
         object.__setattr__(self, "lower", lower)
         object.__setattr__(self, "upper", upper)
         object.__setattr__(self, "spacing", h)
@@ -116,8 +135,8 @@ class Grid:
 
     @property
     def size(self) -> int:
-        """Number of cells."""
-        return int(np.prod(self.shape, dtype=np.int64))
+        """Number of cells (an exact Python int)."""
+        return math.prod(self.shape)
 
     @property
     def is_planar(self) -> bool:
@@ -330,18 +349,26 @@ def _snap_box(parent: Grid, lower, upper, which: int) -> Grid:
     h = parent.spacing
     # Snap outward to parent faces, with a tolerance of 1e-9 cells so that a box already
     # on a face does not grow by a cell through rounding.
-    i0 = np.floor((np.asarray(lo) - plo) / h + 1e-9).astype(np.int64)
-    i1 = np.ceil((np.asarray(hi) - plo) / h - 1e-9).astype(np.int64)
+    f0 = (np.asarray(lo) - plo) / h + 1e-9
+    f1 = (np.asarray(hi) - plo) / h - 1e-9
+    for a in range(parent.ndim):
+        if not f1[a] > f0[a] - 2e-9:
+            raise InputError(
+                f"refinement box {which} is empty along {_AXES[a]} (lower {lo[a]!r} m, upper {hi[a]!r} m)"
+            )
+        # Compared as floats, before any cast to integers (a bound of 1e300 must not overflow).
+        if not (f0[a] >= 0.0 and f1[a] <= parent.shape[a]):
+            raise InputError(
+                f"refinement box {which} reaches outside the level it sits in along {_AXES[a]} "
+                f"([{lo[a]!r}, {hi[a]!r}] m against [{parent.lower[a]!r}, {parent.upper[a]!r}] m); "
+                "shrink the box or enlarge the domain"
+            )
+    i0 = np.floor(f0).astype(np.int64)
+    i1 = np.ceil(f1).astype(np.int64)
     for a in range(parent.ndim):
         if not i1[a] > i0[a]:
             raise InputError(
-                f"refinement box {which} is empty along {_AXES[a]} (lower {lo[a]:.6g} m, upper {hi[a]:.6g} m)"
-            )
-        if i0[a] < 0 or i1[a] > parent.shape[a]:
-            raise InputError(
-                f"refinement box {which} reaches outside the level it sits in along {_AXES[a]} "
-                f"([{lo[a]:.6g}, {hi[a]:.6g}] m against [{parent.lower[a]:.6g}, {parent.upper[a]:.6g}] m); "
-                "shrink the box or enlarge the domain"
+                f"refinement box {which} is empty along {_AXES[a]} (lower {lo[a]!r} m, upper {hi[a]!r} m)"
             )
     new_lo = tuple(float(v) for v in plo + i0 * h)
     new_hi = tuple(float(v) for v in plo + i1 * h)

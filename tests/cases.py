@@ -169,3 +169,11 @@ lateral_chords = 0.5
 spanwise_chords = 0.5
 thin_fraction_max = 0.95
 """
+
+
+def with_surface(text: str, path: str) -> str:
+    """A case text whose body is the surface file ``path`` instead of a NACA wing (wing-only keys removed)."""
+    import re
+
+    text = re.sub(r'^section = "[^"]*"$', f'surface = "{path}"', text, count=1, flags=re.M)
+    return re.sub(r"^(span|tips|faces|taper|sweep_deg|twist_deg|closed_te|centred) = .*\n", "", text, flags=re.M)

@@ -9,7 +9,7 @@ from pathlib import Path
 
 import pytest
 
-from cases import SMALL_CASE
+from cases import SMALL_CASE, with_surface
 from ibprep.cli import main
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -71,7 +71,7 @@ def test_open_stl_exits_2(tmp_path, capsys):
     stl = tmp_path / "open.stl"
     stl.write_text("solid t\nfacet normal 0 0 1\nouter loop\nvertex 0 0 0\nvertex 1 0 0\nvertex 0 1 0\n"
                    "endloop\nendfacet\nendsolid t\n")
-    case = _case(tmp_path, SMALL_CASE.replace('section = "0012"', 'surface = "open.stl"'))
+    case = _case(tmp_path, with_surface(SMALL_CASE, "open.stl"))
     assert main(["check", str(case)]) == 2
     err = capsys.readouterr().err
     assert "open" in err and "Traceback" not in err

@@ -484,7 +484,7 @@ def test_load_waveform_table_round_trip(tmp_path):
 def test_load_waveform_table_errors_name_file_and_line(tmp_path):
     good = ["0, 0, 0", "1, 1, 0.1", "2, 0, 0", "3, -1, -0.1", "4, 0, 0"]
     p = write(tmp_path, "\n".join(good[:2] + ["2, zero, 0"] + good[3:]))
-    with pytest.raises(InputError, match=r"wave\.csv, line 3: expected numbers"):
+    with pytest.raises(InputError, match=r"wave\.csv, line 3: value 2 is not a number; expected numbers"):
         load_waveform_table(p)
     p = write(tmp_path, "\n".join(good[:2] + ["2, 0"] + good[3:]))
     with pytest.raises(InputError, match=r"line 3: expected 3 comma-separated values"):

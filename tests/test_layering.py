@@ -18,7 +18,7 @@ PKG = Path(__file__).resolve().parents[1] / "ibprep"
 
 # Each layer is a set of units; units in one layer are independent of each other.
 LAYERS = [
-    {"errors"},
+    {"errors", "_version"},
     {"files"},
     {"grid", "geometry", "motion"},
     {"tagging"},

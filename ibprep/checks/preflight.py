@@ -103,7 +103,7 @@ class Report:
         return {
             "verdict": self.verdict,
             "title": self.title,
-            "checks": [asdict(c) for c in self.checks],
+            "checks": [_check_dict(c) for c in self.checks],
             "figures": _plain(self.figures),
             "caution": self.caution,
         }
@@ -111,6 +111,16 @@ class Report:
     def to_json(self, indent: int = 2) -> str:
         """The report as a JSON string."""
         return json.dumps(self.to_dict(), indent=indent, allow_nan=False)
+
+
+def _check_dict(c: Check) -> dict:
+    """A check as JSON-ready data: a value or limit that is not finite is null, and the message says why."""
+    d = _plain(asdict(c))
+    notes = [f"{k} is {float(getattr(c, k))!r}, written as null" for k in ("value", "limit")
+             if isinstance(getattr(c, k), (int, float, np.floating)) and not math.isfinite(float(getattr(c, k)))]
+    if notes:
+        d["message"] = f"{c.message} ({'; '.join(notes)})"
+    return d
 
 
 def _plain(x):

@@ -59,6 +59,12 @@ class Envelope:
     max_speed: float
 
 
+# The most samples of one period swept_envelope takes (each sample is two boxes: 48 bytes,
+# plus one block of transformed hull points at a time). A body that needs more travels
+# millions of cells per period: the case's units are wrong.
+_MAX_SAMPLES = 10**6
+
+
 def _hull_points(vertices: np.ndarray) -> np.ndarray:
     """Vertices of the convex hull (the extreme points of every rigid pose of the body)."""
     from scipy.spatial import ConvexHull, QhullError
@@ -92,7 +98,14 @@ def swept_envelope(surface, motion, spacing: float) -> Envelope:
     probe = np.linspace(0.0, period, 257)[:-1]
     speed = max(float(np.linalg.norm(m.velocity(h, probe), axis=-1).max()) for h, m in zip(hulls, motions))
     # The sampled maximum can miss the true one slightly; 10 % headroom.
-    n = max(_MIN_SAMPLES, int(math.ceil(1.1 * speed * period / (_SAMPLE_TRAVEL_CELLS * spacing))))
+    n_float = 1.1 * speed * period / (_SAMPLE_TRAVEL_CELLS * spacing)
+    if not n_float <= _MAX_SAMPLES:  # also inf and nan, before any allocation
+        raise InputError(
+            f"the body travels {speed * period:.3g} m per period ({period:.6g} s), which needs {n_float:.3g} samples "
+            f"of the swept envelope at spacing {spacing:.6g} m, more than the {_MAX_SAMPLES:.0e} allowed; "
+            "check the units of the motion's amplitudes, frequency and pivot, and of the spacing"
+        )
+    n = max(_MIN_SAMPLES, int(math.ceil(n_float)))
     times = np.linspace(0.0, period, n, endpoint=False)
     lo = np.full((n, 3), np.inf)
     hi = np.full((n, 3), -np.inf)

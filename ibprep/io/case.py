@@ -28,13 +28,14 @@ import numpy as np
 from ..errors import InputError
 from ..grid import Grid, NestedGrid, refine
 
-__all__ = ["Case", "BodyCase", "BodySpec", "FlowSpec", "TimeSpec", "CheckLimits", "SizingSpec", "KEYS", "load_case", "parse_case"]
+__all__ = ["Case", "BodyCase", "BodySpec", "FlowSpec", "TimeSpec", "CheckLimits", "SizingSpec", "KEYS", "SCALE_LIMITS",
+           "load_case", "parse_case"]
 
 
 # --------------------------------------------------------------------------- key table
 @dataclass(frozen=True)
 class _Key:
-    kind: str  # "float", "int", "bool", "str", "vec3", "boxes"
+    kind: str  # "float", "int", "bool", "str", "vec3" (a point: [x, y, z], or [x, y] in a 2-D case), "boxes"
     unit: str = ""
     required: bool = False
     default: Any = None
@@ -62,7 +63,8 @@ KEYS: dict[str, dict[str, _Key]] = {
         "section": _k("str", doc='NACA 4-digit code, e.g. "0015"; or give surface'),
         "surface": _k("str", doc="path of a closed STL/OBJ/PLY body, relative to the case file"),
         "scale": _k("float", "-", default=1.0, minimum=0.0, strict=True, doc="factor applied to surface coordinates"),
-        "chord": _k("float", "m", required=True, minimum=0.0, strict=True, doc="reference (root) chord"),
+        "chord": _k("float", "m", required=True, minimum=1e-6, maximum=1e4, doc="reference (root) chord",
+                    fix="the chord is in metres (1 micrometre to 10 km)"),
         "span": _k("float", "m", minimum=0.0, strict=True, doc="tip-to-tip span of a wing built from section",
                    fix="leave span out for a 2-D section case (two-component [grid] bounds)"),
         "tips": _k("str", default="round", choices=("flat", "round"), doc="how the wing ends are closed"),
@@ -71,18 +73,20 @@ KEYS: dict[str, dict[str, _Key]] = {
         "twist_deg": _k("float", "deg", default=0.0, minimum=-60.0, maximum=60.0, doc="tip incidence relative to root"),
         "closed_te": _k("bool", default=True, doc="closed (sharp) trailing edge of the NACA section"),
         "centred": _k("bool", default=False, doc="mid-span at z = 0 instead of the root"),
-        "faces": _k("int", default=20000, minimum=200, doc="approximate triangle count of a generated wing"),
+        "faces": _k("int", default=20000, minimum=200, maximum=2_000_000,
+                    doc="approximate triangle count of a generated wing"),
     },
     "motion": {
-        "frequency": _k("float", "Hz", required=True, minimum=0.0, strict=True, doc="oscillation frequency"),
+        "frequency": _k("float", "Hz", minimum=0.0, strict=True,
+                        doc="oscillation frequency (required unless a table gives the period)"),
         "plunge_amplitude": _k("float", "m", default=0.0, minimum=0.0, doc="plunge amplitude along y"),
         "pitch_amplitude_deg": _k("float", "deg", default=0.0, minimum=0.0, maximum=90.0, strict=False,
                                   doc="pitch amplitude about the span axis, nose-up positive"),
         "phase_deg": _k("float", "deg", default=90.0, doc="phase by which pitch leads plunge"),
         "pivot": _k("vec3", "m", default=(0.0, 0.0, 0.0), doc="pitch axis point, body frame"),
-        "plunge_sharpness": _k("float", "-", default=0.0, minimum=0.0,
+        "plunge_sharpness": _k("float", "-", default=0.0, minimum=0.0, maximum=100.0,
                                doc="0 = sine; larger = flatter, near-square plunge"),
-        "pitch_sharpness": _k("float", "-", default=0.0, minimum=0.0,
+        "pitch_sharpness": _k("float", "-", default=0.0, minimum=0.0, maximum=100.0,
                               doc="0 = sine; larger = flatter, near-square pitch"),
         "roll_amplitude_deg": _k("float", "deg", default=0.0, minimum=0.0, maximum=180.0,
                                  doc="flapping stroke amplitude about the body x axis at the root"),
@@ -102,10 +106,11 @@ KEYS: dict[str, dict[str, _Key]] = {
     },
     "time": {
         "step": _k("float", "s", required=True, minimum=0.0, strict=True, doc="solver time step"),
-        "cycles": _k("int", "-", default=1, minimum=1, doc="cycles the run will last"),
+        "cycles": _k("int", "-", default=1, minimum=1, maximum=1_000_000, doc="cycles the run will last"),
     },
     "checks": {
-        "phases": _k("int", "-", default=32, minimum=4, doc="sampled phases per cycle (plus peak-speed instants)"),
+        "phases": _k("int", "-", default=32, minimum=4, maximum=100_000,
+                     doc="sampled phases per cycle (plus peak-speed instants)"),
         "all_steps": _k("bool", default=False, doc="check every solver step of one cycle instead"),
         "cfl_warn": _k("float", "-", default=0.5, minimum=0.0, strict=True, doc="convective Courant number: warn above"),
         "cfl_max": _k("float", "-", default=1.0, minimum=0.0, strict=True, doc="convective Courant number: fail above"),
@@ -138,7 +143,7 @@ KEYS: dict[str, dict[str, _Key]] = {
         "wake": _k("float", "c", default=1.0, minimum=0.0, doc="finest box length behind the swept body"),
         "buffer_cells": _k("int", "cells", default=8, minimum=2, doc="cells of a level around the next finer box"),
         "target_spacing": _k("float", "m", minimum=0.0, strict=True,
-                             doc="finest spacing wanted (default: from the resolution rules)"),
+                             doc="finest spacing wanted (default: from the resolution rules); at least chord / 100 000"),
     },
 }
 
@@ -189,7 +194,7 @@ def _coerce(table: str, name: str, spec: _Key, value):
             raise InputError(f"{where} must be <= {spec.maximum:g}{unit}, got {value!r}{fix}")
         return value
     if spec.kind == "vec3":
-        return _vec3(where, value, sizes=(3,))
+        return _vec3(where, value)  # two components only in a 2-D case: see _points
     if spec.kind == "bounds":
         return _vec3(where, value)
     if spec.kind == "boxes":
@@ -414,6 +419,12 @@ class Case:
     sizing: SizingSpec = field(default_factory=SizingSpec)
     path: Path | None = None
     bodies: tuple = ()
+    files: tuple = ()
+
+    @property
+    def inputs(self) -> tuple:
+        """Every file the case reads: the case file itself (when loaded from one), surfaces and tables."""
+        return ((self.path,) if self.path is not None else ()) + tuple(self.files)
 
     @property
     def chord(self) -> float:
@@ -578,6 +589,10 @@ def _body_spec(b: dict, planar: bool, base: Path | None, label: str) -> BodySpec
     surface = None
     if b["surface"] is not None:
         surface = _resolve(b["surface"], base, f"[{label}] surface")
+        ignored = sorted(b.get("_given", frozenset()) & set(_WING_KEYS))
+        if ignored:
+            raise InputError(f"[{label}] {ignored[0]} describes a wing built from a section; with surface = "
+                             f"... the file is the body: remove {', '.join(ignored)}")
     else:
         if b["span"] is None and not planar:
             raise InputError(f"[{label}] span is missing: a wing built from a section needs its span in metres")
@@ -617,14 +632,101 @@ def _motion(m: dict, offset, planar: bool, base: Path | None, label: str):
     )
 
 
+#: Sizes a case may ask for, relative to its chord or absolute; past them the case is bad input
+#: (refused before anything is built or allocated). Documented in the README's case-file section.
+SCALE_LIMITS = {
+    "span_chords": (0.01, 1000.0),  # a wing's span, in chords
+    "length_chords": 1000.0,  # plunge amplitude, |pivot|, |roll_root|, |offset| components, in chords
+    "steps_per_cycle": 10**8,  # solver steps in one period
+    "target_spacing_chords": 1e-5,  # the finest spacing [sizing] may ask for, in chords
+}
+
+
+# [body] keys that shape a wing built from a section: refused beside surface = "...".
+_WING_KEYS = ("span", "tips", "taper", "sweep_deg", "twist_deg", "closed_te", "centred", "faces")
+
+# [motion] keys that a waveform table replaces: giving them beside table is refused, not ignored.
+_TABLE_REPLACES = ("plunge_amplitude", "pitch_amplitude_deg", "phase_deg", "plunge_sharpness", "pitch_sharpness")
+
+
+def _given_keys(bodies_in: list, data: dict) -> list[tuple[set, set]]:
+    """The keys each body's [body] and [motion] tables actually give (defaults not counted)."""
+    if "bodies" in data:
+        return [(set(e) - {"motion"}, set(e.get("motion", {}))) for e in data["bodies"]]
+    return [(set(data.get("body", {})), set(data.get("motion", {})))]
+
+
+def _check_combinations(bodies_in: list, given: list, planar: bool, several: bool) -> None:
+    """Keys that mean nothing beside others are refused, so that nothing is silently ignored."""
+    for i, ((b, m), (gb, gm)) in enumerate(zip(bodies_in, given), start=1):
+        blabel, mlabel = (f"bodies {i}", f"bodies {i} motion") if several else ("body", "motion")
+        b["_given"] = frozenset(gb)  # for _body_spec, once the surface file is found
+        if m["table"] is not None:
+            replaced = sorted(gm & set(_TABLE_REPLACES))
+            if replaced:
+                raise InputError(f"[{mlabel}] {replaced[0]}: the table gives h and theta over the period, so "
+                                 f"{', '.join(replaced)} would be ignored; remove them or the table")
+        elif m["frequency"] is None:
+            raise InputError(f"[{mlabel}] frequency is missing: give the oscillation frequency (Hz), or a table")
+        for label, key, table in ((blabel, "offset", b), (mlabel, "pivot", m), (mlabel, "roll_root", m)):
+            if len(table[key]) == 2:
+                if not planar:
+                    raise InputError(f"[{label}] {key} must be [x, y, z] in metres in a 3-D case, got "
+                                     f"{list(table[key])!r}")
+                table[key] = (*table[key], 0.0)  # a point of the x-y plane
+
+
+def _check_scales(tables: dict, bodies_in: list, several: bool) -> None:
+    """Refuse sizes that no real case has and that would overflow or exhaust memory later."""
+    lo_span, hi_span = SCALE_LIMITS["span_chords"]
+    far = SCALE_LIMITS["length_chords"]
+    for i, (b, m) in enumerate(bodies_in, start=1):
+        blabel, mlabel = (f"bodies {i}", f"bodies {i} motion") if several else ("body", "motion")
+        c = b["chord"]
+        if b["span"] is not None and not lo_span * c <= b["span"] <= hi_span * c:
+            raise InputError(f"[{blabel}] span ({b['span']!r} m) must be between {lo_span:g} and {hi_span:g} chords "
+                             f"({lo_span * c:.6g} to {hi_span * c:.6g} m); check its units")
+        lengths = [(blabel, "offset", b["offset"]), (mlabel, "pivot", m["pivot"]), (mlabel, "roll_root", m["roll_root"]),
+                   (mlabel, "plunge_amplitude", (m["plunge_amplitude"],))]
+        for label, key, vec in lengths:
+            if any(abs(v) > far * c for v in vec):
+                raise InputError(f"[{label}] {key} ({list(vec) if len(vec) > 1 else vec[0]!r} m) is more than "
+                                 f"{far:g} chords ({far * c:.6g} m) from the body; check its units")
+    target = tables["sizing"]["target_spacing"]
+    if target is not None:
+        c_min = min(b["chord"] for b, _ in bodies_in)
+        if target < SCALE_LIMITS["target_spacing_chords"] * c_min:
+            raise InputError(f"[sizing] target_spacing ({target!r} m) is finer than chord / "
+                             f"{1 / SCALE_LIMITS['target_spacing_chords']:.0f} ({SCALE_LIMITS['target_spacing_chords'] * c_min:.3g} m); "
+                             "check its units")
+
+
+def _check_steps(step: float, bodies: list, several: bool) -> None:
+    """Refuse a step longer than a period, or so short that one period has more steps than the cap."""
+    cap = SCALE_LIMITS["steps_per_cycle"]
+    for i, body in enumerate(bodies, start=1):
+        mlabel = f"bodies {i} motion" if several else "motion"
+        period = body.motion.period
+        steps = period / step
+        if not steps >= 1.0:
+            raise InputError(f"[time] step ({step!r} s) is longer than one period of the motion "
+                             f"({period:.6g} s, from [{mlabel}]); a step must be a small fraction of the period")
+        if not steps <= cap:
+            raise InputError(f"[time] step ({step!r} s) gives {steps:.3g} steps per period ({period:.6g} s, from "
+                             f"[{mlabel}]), more than the {cap:.0e} allowed; check the units of step and frequency")
+
+
 def _build(tables: dict[str, dict[str, Any]], bodies_in: list, base: Path | None) -> Case:
     planar = len(tables["grid"]["lower"]) == 2
+    _check_scales(tables, bodies_in, len(bodies_in) > 1)
     several = len(bodies_in) > 1
     bodies = []
     for i, (b, m) in enumerate(bodies_in, start=1):
         blabel, mlabel = (f"bodies {i}", f"bodies {i} motion") if several else ("body", "motion")
         spec = _body_spec(b, planar, base, blabel)
         bodies.append(BodyCase(name=b["name"], spec=spec, motion=_motion(m, spec.offset, planar, base, mlabel)))
+    _check_table_frequency(bodies, bodies_in, several)
+    _check_steps(tables["time"]["step"], bodies, several)
     periods = [bc.motion.period for bc in bodies]
     if several and not np.allclose(periods, periods[0], rtol=1e-9):
         raise InputError(f"[[bodies]] motions must share one period (frequency), got periods {periods} s")
@@ -643,8 +745,22 @@ def _build(tables: dict[str, dict[str, Any]], bodies_in: list, base: Path | None
     time = TimeSpec(step=t["step"], cycles=t["cycles"])
     checks = CheckLimits(**tables["checks"])
     sizing = SizingSpec(**tables["sizing"])
+    files = [b.spec.surface for b in bodies if b.spec.surface is not None]
+    files += [_resolve(m["table"], base, "table") for _, m in bodies_in if m["table"] is not None]
     return Case(title=tables["case"]["title"], body=bodies[0].spec, motion=bodies[0].motion, flow=flow,
-                grid=nested, time=time, checks=checks, sizing=sizing, path=None, bodies=tuple(bodies))
+                grid=nested, time=time, checks=checks, sizing=sizing, path=None, bodies=tuple(bodies),
+                files=tuple(files))
+
+
+def _check_table_frequency(bodies: list, bodies_in: list, several: bool) -> None:
+    """A frequency given beside a table must agree with the table's period (else: which one wins?)."""
+    for i, (body, (_, m)) in enumerate(zip(bodies, bodies_in), start=1):
+        if m["table"] is not None and m["frequency"] is not None:
+            f_table = 1.0 / body.motion.period
+            if not math.isclose(m["frequency"], f_table, rel_tol=1e-9):
+                mlabel = f"bodies {i} motion" if several else "motion"
+                raise InputError(f"[{mlabel}] frequency ({m['frequency']!r} Hz) differs from the table's "
+                                 f"({f_table!r} Hz, one over its period); remove frequency or make them agree")
 
 
 def parse_case(source, *, base: str | Path | None = None) -> Case:
@@ -662,15 +778,22 @@ def parse_case(source, *, base: str | Path | None = None) -> Case:
         out-of-range values, missing files — each naming the key.
     """
     if isinstance(source, str):
+        if "\x00" in source:
+            raise InputError("the case file holds NUL bytes: it is a binary file, not TOML text")
         try:
             data = tomllib.loads(source)
         except tomllib.TOMLDecodeError as exc:
             raise InputError(f"the case file is not valid TOML: {exc}") from None
+        except RecursionError:
+            raise InputError("the case file nests arrays or tables too deeply to be a case file; "
+                             "a case needs at most a few levels") from None
     elif isinstance(source, dict):
         data = source
     else:
         raise InputError(f"a case is TOML text or a dict, got {type(source).__name__}")
     tables, bodies = _read_tables(data)
+    planar = len(tables["grid"]["lower"]) == 2
+    _check_combinations(bodies, _given_keys(bodies, data), planar, len(bodies) > 1)
     return _build(tables, bodies, Path(base) if base is not None else None)
 
 
@@ -692,12 +815,20 @@ def load_case(path) -> Case:
         with the file named.
     """
     p = Path(path)
+    if p.is_dir():
+        raise InputError(f"case file {str(p)!r} is a folder; give the TOML file inside it")
     if not p.is_file():
         raise InputError(f"case file {str(p)!r} not found")
     try:
-        text = p.read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(f"cannot read case file {str(p)!r}: {exc}") from None
+        raw = p.read_bytes()
+    except OSError as exc:
+        raise InputError(f"cannot read case file {str(p)!r}: {exc.strerror or exc}") from None
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line = raw[: exc.start].count(b"\n") + 1
+        raise InputError(f"case file {str(p)!r} is not UTF-8 text (byte {exc.start + 1}, line {line}); "
+                         "save it as UTF-8") from None
     try:
         case = parse_case(text, base=p.parent)
     except InputError as exc:

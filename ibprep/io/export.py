@@ -42,6 +42,8 @@ def _pyplot():
     import matplotlib
 
     matplotlib.use("Agg", force=True)
+    # Titles come from the case file: '$' is a dollar sign there, never mathtext.
+    matplotlib.rcParams["text.parse_math"] = False
     import matplotlib.pyplot as plt
 
     return plt

@@ -400,9 +400,16 @@ def load_waveform_table(path) -> WaveformTable:
     """
     path = Path(path)
     try:
-        text = path.read_text()
+        raw = path.read_bytes()
     except OSError as exc:
         raise InputError(f"cannot read waveform table {str(path)!r}: {exc.strerror or exc}") from None
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line = raw[: exc.start].count(b"\n") + 1
+        raise InputError(f"{path}, line {line}: not UTF-8 text; a waveform table is a CSV of numbers t, h, theta") from None
+    if "\x00" in text:
+        raise InputError(f"{path}: holds NUL bytes, so it is a binary file, not a CSV of numbers t, h, theta")
     rows, lines = [], []
     scale = 1.0
     for lineno, row in enumerate(csv.reader(text.splitlines()), start=1):
@@ -411,7 +418,7 @@ def load_waveform_table(path) -> WaveformTable:
             continue
         if len(cells) != 3:
             raise InputError(
-                f"{path}, line {lineno}: expected 3 comma-separated values (t, h, theta), got {len(cells)}: {row!r}"
+                f"{path}, line {lineno}: expected 3 comma-separated values (t, h, theta), found {len(cells)}"
             )
         try:
             rows.append([float(c) for c in cells])
@@ -421,9 +428,10 @@ def load_waveform_table(path) -> WaveformTable:
                 scale = _TABLE_COLUMNS[key]
                 lines.append(None)  # header seen; no data yet
                 continue
+            bad = next(k for k, c in enumerate(cells) if not _is_number(c))
             raise InputError(
-                f"{path}, line {lineno}: expected numbers t, h, theta (or a first-row header "
-                f"'t,h,theta' or 't,h,theta_deg'), got {row!r}"
+                f"{path}, line {lineno}: value {bad + 1} is not a number; expected numbers t, h, theta "
+                f"(or a first-row header 't,h,theta' or 't,h,theta_deg')"
             ) from None
         lines.append(lineno)
     lines = [ln for ln in lines if ln is not None]
@@ -436,6 +444,14 @@ def load_waveform_table(path) -> WaveformTable:
     object.__setattr__(table, "theta", data[:, 2] * scale)
     table._validate(lines, f"{path}")
     return table
+
+
+def _is_number(text: str) -> bool:
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True
 
 
 # ----------------------------------------------------------------------------- rotations
