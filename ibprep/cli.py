@@ -335,27 +335,20 @@ def _size_add_args(p):
 
 def _run_size(args) -> int:
     from .io.case import load_case
-    from .checks.sizing import propose_boxes, required_spacing, resolution_lengths, swept_envelope
+    from .checks.sizing import size_case
 
     case = load_case(args.case)
-    c = case.chord
-    sec = case.section
-    le = float(sec.le_radius) * c if sec is not None else None
-    lengths = resolution_lengths(c, case.flow.speed, case.flow.viscosity, case.motion.frequency, le)
-    target, rule, per_rule = required_spacing(lengths, case.checks)
-    if case.sizing.target_spacing is not None:
-        target, rule = case.sizing.target_spacing, "[sizing] target_spacing"
-    env = swept_envelope(case.surfaces, case.motions, target)
-    s = case.sizing
-    res = propose_boxes(case.grid.base, env, c, target, upstream=s.upstream, lateral=s.lateral, wake=s.wake,
-                        buffer_cells=s.buffer_cells, rule=rule)
+    sz = size_case(case)
+    res = sz.proposal
+    env = res.envelope
+    c = sz.lengths.chord
     ng = res.grid
     print(_printable(f"ibprep size: {case.title or args.case}"))
     print("")
-    print("what the body needs:")
-    for name, h in per_rule.items():
+    print("what the body needs" + (" (the most demanding of the bodies):" if len(case.bodies) > 1 else ":"))
+    for name, h in sz.per_rule.items():
         print(f"  {name:<22} h <= {h:.4g} m  (c/{c / h:.0f})")
-    print(f"  -> finest spacing {ng.finest_spacing:.4g} m (c/{c / ng.finest_spacing:.0f}), set by the {rule} rule")
+    print(f"  -> finest spacing {ng.finest_spacing:.4g} m (c/{c / ng.finest_spacing:.0f}), set by the {sz.rule} rule")
     print("")
     print("swept envelope over one cycle (m):")
     nd = case.grid.base.ndim  # a 2-D case's body is a prism: its depth is not part of the answer
@@ -372,13 +365,16 @@ def _run_size(args) -> int:
     if any(res.clipped):
         print("  note: some boxes were cut back to the domain; consider a larger domain")
     print("")
-    print("paste into the case file, replacing the [[grid.refine]] blocks:")
+    print("paste into the case file, replacing the [[grid.refine]] blocks (exact values: pasted, they give")
+    print("the cells above):")
     print("")
     for lo, hi in res.boxes:
         print("[[grid.refine]]")
-        print(f"lower = [{', '.join(f'{x:.6g}' for x in lo)}]")
-        print(f"upper = [{', '.join(f'{x:.6g}' for x in hi)}]")
+        print(f"lower = [{', '.join(repr(float(x)) for x in lo)}]")
+        print(f"upper = [{', '.join(repr(float(x)) for x in hi)}]")
     return EXIT_OK
+
+
 
 
 # --------------------------------------------------------------------------- export

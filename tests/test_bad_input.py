@@ -181,6 +181,20 @@ def test_bad_options_are_refused_before_any_work(good, capsys, name, argv, patte
     _refused(argv(good.parent), capsys, good.parent, pattern)
 
 
+def test_a_level_too_large_for_this_machine_is_refused_before_the_sweep(tmp_path, capsys, monkeypatch):
+    # 1.6e10 cells at 3 bytes a cell is 45 GiB; the machine is told to have 4 GiB, so the refusal does not
+    # depend on the test machine's memory.
+    import ibprep.checks.preflight as pf
+
+    monkeypatch.setattr(pf, "_physical_memory", lambda: 4 * 2**30)
+    text = _with("spacing = 0.006", "spacing = 0.00012").replace(
+        "[[grid.refine]]\nlower = [-0.03, -0.06, -0.015]\nupper = [0.15, 0.06, 0.135]\n", "")
+    case = tmp_path / "huge.toml"
+    case.write_text(text)
+    _refused(["check", str(case), "--no-progress"], capsys, tmp_path,
+             r"\[grid\] level 0, which holds the body, has 16,000,000,000 cells: .* 44.7 GiB .* this machine's 4 GiB")
+
+
 def test_the_zoo_is_large():
     # At least 60 bad inputs across check, size, export and demo (each case text runs under three commands).
     assert 3 * len(CASE_TEXTS) + 3 * len(CASE_FILES) + len(OPTIONS) >= 60

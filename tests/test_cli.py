@@ -98,6 +98,58 @@ def test_size_prints_a_pasteable_block(tmp_path, capsys):
     assert len(boxes) >= 1 and all(len(b["lower"]) == 3 for b in boxes)
 
 
+def _paste_refine(text: str, block: str) -> str:
+    """The case text with its [[grid.refine]] blocks replaced by ``block`` (placed after [grid])."""
+    import re
+
+    text = re.sub(r"\[\[grid\.refine\]\]\nlower = \[[^\]]*\]\nupper = \[[^\]]*\]\n", "", text)
+    head, tail = text.split("\n[time]", 1)
+    return head.rstrip("\n") + "\n" + block.strip() + "\n\n[time]" + tail
+
+
+@pytest.mark.parametrize("spacing, target", [("0.006", None), ("0.0075", 0.00046875)])
+def test_size_block_pasted_into_the_case_gives_the_promised_cells(tmp_path, capsys, spacing, target):
+    # The printed corners round-trip exactly: pasted back they snap to the same cells, never out of the
+    # domain. With a finest spacing of 0.00046875 m the faces need 7 digits (0.1078125): printed to 6 they used to
+    # snap outward by a cell or be refused as reaching outside the domain.
+    import ibprep
+
+    text = SMALL_CASE.replace("spacing = 0.006", f"spacing = {spacing}")
+    if target is not None:
+        text += f"\n[sizing]\ntarget_spacing = {target}\n"
+    case = _case(tmp_path, text)
+    assert main(["size", str(case)]) == 0
+    out = capsys.readouterr().out
+    promised = int(out[out.index("  total ") + 8:].split(" cells")[0].replace(",", ""))
+    block = out[out.index("\n[[grid.refine]]") + 1:]
+    pasted = _case(tmp_path, _paste_refine(text, block), "pasted.toml")
+    assert ibprep.load_case(pasted).grid.total_cells == promised
+    # And each printed corner is the level's face itself, to the last bit.
+    import tomllib
+
+    levels = ibprep.load_case(pasted).grid.levels[1:]
+    boxes = tomllib.loads(block)["grid"]["refine"]
+    assert [(tuple(b["lower"]), tuple(b["upper"])) for b in boxes] == [(g.lower, g.upper) for g in levels]
+
+
+def test_size_sizes_for_the_most_demanding_body(tmp_path, capsys):
+    # Two bodies, the second with half the chord: the finest spacing follows the smaller chord.
+    from cases import TANDEM_CASE
+
+    import ibprep
+
+    text = TANDEM_CASE.replace('name = "aft"\nsection = "0012"\nchord = 0.06', 'name = "aft"\nsection = "0012"\nchord = 0.03')
+    case = ibprep.parse_case(text)
+    chords = sorted(b.chord for b in case.bodies)
+    assert chords == [0.03, 0.06]
+    p = _case(tmp_path, text)
+    assert main(["size", str(p)]) == 0
+    out = capsys.readouterr().out
+    per_chord = float(out.split("cells per chord")[1].split("h <=")[1].split()[0])
+    assert per_chord == pytest.approx(chords[0] / case.checks.cells_per_chord_warn, rel=1e-3)
+    assert "most demanding" in out
+
+
 def test_size_of_a_2d_case_speaks_in_two_components(tmp_path, capsys):
     from cases import SMALL_CASE_2D
 

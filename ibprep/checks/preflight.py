@@ -19,13 +19,14 @@ from __future__ import annotations
 
 import json
 import math
+import os
 from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
 from ..io.case import Case
 from ..errors import InputError
-from .sizing import resolution_lengths, swept_envelope
+from .sizing import demanding_lengths, swept_envelope
 from ..stencils.build import StencilLimits
 
 __all__ = ["Check", "Report", "preflight", "CAUTION", "check_instants", "STATUSES"]
@@ -448,6 +449,7 @@ def preflight(case: Case, *, all_steps: bool | None = None, workers: int = 1, sc
     level = _body_level(case, env)
     grid = case.grid.levels[level]
     h = grid.spacing
+    _memory_fits(grid, level, workers if scheduler in (None, "local") else 0)
     # A rigid body's point speed |v0 + w x r| is convex in r, so its maximum over the body
     # is reached at a vertex of the convex hull: the hull points give the exact peak.
     hull = _hull(np.asarray(case.surface.vertices))
@@ -502,6 +504,37 @@ def preflight(case: Case, *, all_steps: bool | None = None, workers: int = 1, sc
     figures["grid"]["memory_bytes"] = {"tags": mem.tags, "stencils": mem.stencils, "total": mem.total}
     return Report(verdict=_verdict(checks), checks=tuple(checks), figures=figures, title=case.title,
                   steps=tuple(steps))
+
+
+# Bytes per cell of the level holding the body that one sweep task holds: the tags of the
+# step before and after (one byte each) and the step's changed-cell workspace (about one).
+SWEEP_BYTES_PER_CELL = 3
+
+
+def _physical_memory() -> int | None:
+    try:
+        return os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    except (AttributeError, ValueError, OSError):  # not a POSIX system: no estimate
+        return None
+
+
+def _memory_fits(grid, level: int, workers: int) -> None:
+    """Refuse, before the sweep, a level that the local workers cannot hold in this machine's memory.
+
+    ``workers`` is the number of local processes (0 when the sweep runs on a remote Dask cluster,
+    whose workers' memory is not this machine's).
+    """
+    have = _physical_memory()
+    if not workers or have is None:
+        return
+    need = SWEEP_BYTES_PER_CELL * grid.size * max(1, workers)
+    if need > have:
+        raise InputError(
+            f"[grid] level {level}, which holds the body, has {grid.size:,} cells: checking it needs about "
+            f"{need / 2**30:.3g} GiB ({SWEEP_BYTES_PER_CELL} bytes a cell x {max(1, workers)} worker(s)), more than "
+            f"this machine's {have / 2**30:.3g} GiB; use a coarser spacing or a smaller finest box, fewer "
+            "--workers, or a Dask cluster (--scheduler)"
+        )
 
 
 def _stencil_checks(steps, limits: StencilLimits, figures: dict, h: float) -> list[Check]:
@@ -569,19 +602,8 @@ def _hull(points: np.ndarray) -> np.ndarray:
 
 
 def _demanding_lengths(case: Case):
-    """Resolution lengths of the most demanding body: smallest chord, nose radius and Blasius thickness."""
-    per = []
-    for body in case.bodies:
-        sec = body.section
-        le = float(sec.le_radius) * body.chord if sec is not None else None  # Section lengths are per unit chord
-        per.append(resolution_lengths(body.chord, case.flow.speed, case.flow.viscosity, body.motion.frequency, le))
-    if len(per) == 1:
-        return per[0]
-    from dataclasses import replace
-
-    les = [p.le_radius for p in per if p.le_radius is not None]
-    return replace(per[0], chord=min(p.chord for p in per), le_radius=min(les) if les else None,
-                   bl_thickness=min(p.bl_thickness for p in per), stokes_layer=min(p.stokes_layer for p in per))
+    """Resolution lengths of the most demanding body (see :func:`~ibprep.checks.sizing.demanding_lengths`)."""
+    return demanding_lengths(case)
 
 
 def _gap_checks(case: Case, env, h: float, figures: dict) -> list[Check]:

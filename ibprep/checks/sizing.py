@@ -26,6 +26,9 @@ __all__ = [
     "resolution_lengths",
     "required_spacing",
     "propose_boxes",
+    "demanding_lengths",
+    "CaseSizing",
+    "size_case",
 ]
 
 # Samples are placed so that the fastest body point moves at most this many cells
@@ -267,3 +270,68 @@ def propose_boxes(base: Grid, envelope: Envelope, chord: float, target_spacing: 
     snapped = tuple((g.lower, g.upper) for g in nested.levels[1:])
     return SizingResult(envelope=envelope, target_spacing=target_spacing, rule=rule, grid=nested,
                         boxes=snapped, clipped=tuple(clipped))
+
+
+def demanding_lengths(case) -> ResolutionLengths:
+    """Resolution lengths of a case's most demanding body: smallest chord, nose radius, Blasius and Stokes layers.
+
+    Parameters
+    ----------
+    case : Case — every body's chord, section and motion frequency, and the flow.
+    """
+    per = []
+    for body in case.bodies:
+        sec = body.section
+        le = float(sec.le_radius) * body.chord if sec is not None else None  # Section lengths are per unit chord
+        per.append(resolution_lengths(body.chord, case.flow.speed, case.flow.viscosity, body.motion.frequency, le))
+    if len(per) == 1:
+        return per[0]
+    from dataclasses import replace
+
+    les = [p.le_radius for p in per if p.le_radius is not None]
+    return replace(per[0], chord=min(p.chord for p in per), le_radius=min(les) if les else None,
+                   bl_thickness=min(p.bl_thickness for p in per), stokes_layer=min(p.stokes_layer for p in per))
+
+
+@dataclass(frozen=True)
+class CaseSizing:
+    """What ``ibprep size`` reports for a case (see :func:`size_case`).
+
+    Attributes
+    ----------
+    lengths : ResolutionLengths — of the most demanding body.
+    per_rule : dict of str to float — metres; the spacing each resolution rule asks for.
+    target_spacing : float — metres; the finest spacing wanted.
+    rule : str — what sets it (a resolution rule, or ``[sizing] target_spacing``).
+    proposal : SizingResult — the swept envelope and the proposed, snapped boxes.
+    """
+
+    lengths: ResolutionLengths
+    per_rule: dict
+    target_spacing: float
+    rule: str
+    proposal: SizingResult
+
+
+def size_case(case) -> CaseSizing:
+    """Refinement boxes for a case: the spacing its most demanding body needs, around everything it sweeps.
+
+    Parameters
+    ----------
+    case : Case — from :func:`~ibprep.load_case`; its ``[checks]`` warn limits set the resolution
+        rules, its ``[sizing]`` table the margins (in the reference chord) and an optional target spacing.
+
+    Returns
+    -------
+    CaseSizing — the proposal's boxes are snapped to the faces of the levels they sit in, so pasting
+    them into the case gives exactly the proposal's cells.
+    """
+    lengths = demanding_lengths(case)
+    target, rule, per_rule = required_spacing(lengths, case.checks)
+    if case.sizing.target_spacing is not None:
+        target, rule = case.sizing.target_spacing, "[sizing] target_spacing"
+    env = swept_envelope(case.surfaces, case.motions, target)
+    s = case.sizing
+    proposal = propose_boxes(case.grid.base, env, case.chord, target, upstream=s.upstream, lateral=s.lateral,
+                             wake=s.wake, buffer_cells=s.buffer_cells, rule=rule)
+    return CaseSizing(lengths=lengths, per_rule=per_rule, target_spacing=target, rule=rule, proposal=proposal)
