@@ -296,7 +296,8 @@ class _WorstStep:
     """The worst checked step of a report, re-tagged once for the plots and the ParaView file.
 
     Attributes: step (StepResult), grid (the level holding the body), vertices and faces
-    (world frame at that step), tags (grid.shape uint8).
+    (world frame at that step), tags (grid.shape uint8), z (metres: the slice plane, through the
+    worst stencil of that step) and note (why the slice is there).
     """
 
     def __init__(self, case, report):
@@ -306,25 +307,37 @@ class _WorstStep:
         self.grid = case.grid.levels[report.figures["resolution"]["level_at_body"]]
         self.vertices, self.faces = case.world_surface(self.step.time)
         self.tags = classify((self.vertices, self.faces), self.grid)
+        v = self.vertices
+        self.z, self.note = float(0.5 * (v[:, 2].min() + v[:, 2].max())), "mid-span"
+        if self.grid.ndim == 3:
+            if self.step.bad_points:
+                self.z, self.note = float(self.step.bad_points[0][2]), "through a failed stencil"
+            elif len(self.step.worst_condition_at) == 3:
+                self.z, self.note = float(self.step.worst_condition_at[2]), "through the worst-conditioned stencil"
 
 
 def _write_plots(case, report, folder: Path, worst: "_WorstStep | None" = None) -> list[Path]:
     from .io.export import plot_motion, plot_steps, plot_tags_slice
 
     out = [plot_motion(case.motion, case.chord, case.flow.speed, folder / "motion.png", title=case.title)]
+    env = report.figures.get("envelope", {})
+    envelope = (env["lower_m"], env["upper_m"]) if env else None
     if report.steps:
         limit = next((c.limit for c in report.checks if c.id == "stencil.condition"), None)
         out.append(plot_steps(report.steps, case.motion.period, folder / "steps.png", condition_limit=limit))
         worst = worst or _WorstStep(case, report)
         v = worst.vertices
-        env = report.figures.get("envelope", {})
-        z = float(0.5 * (v[:, 2].min() + v[:, 2].max()))
         pad = 0.3 * case.chord
         zoom = ((v[:, 0].min() - pad, v[:, 1].min() - pad), (v[:, 0].max() + pad, v[:, 1].max() + pad))
-        out.append(plot_tags_slice(worst.tags, worst.grid, z, folder / "tags.png", nested=case.grid,
-                                   envelope=(env["lower_m"], env["upper_m"]) if env else None,
-                                   bad_points=worst.step.bad_points,
-                                   title=f"worst checked step t = {worst.step.time:.4g} s", zoom=zoom))
+        out.append(plot_tags_slice(worst.tags, worst.grid, worst.z, folder / "tags.png", nested=case.grid,
+                                   envelope=envelope, bad_points=worst.step.bad_points,
+                                   title=f"worst checked step t = {worst.step.time:.4g} s", zoom=zoom,
+                                   slice_note=worst.note))
+    else:
+        # A blocking check stopped the run before the stencils: the domain and boxes against the swept
+        # envelope are what show the problem.
+        out.append(plot_tags_slice(None, case.grid.base, 0.0, folder / "boxes.png", nested=case.grid,
+                                   envelope=envelope, title="the domain, its boxes and the swept envelope"))
     return out
 
 

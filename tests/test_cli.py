@@ -293,3 +293,17 @@ def test_figures_say_when_a_number_does_not_apply():
     text = format_report(report)
     assert "feathering chi                     1.5" in text
     assert "max |alpha_eff| (deg)              20.00" in text
+
+
+def test_check_plots_of_a_blocked_run_show_the_boxes_and_list_the_files(tmp_path, capsys):
+    # The body leaves the domain: the stencils are never built, and the box plot is the one that shows why.
+    case = _case(tmp_path, SMALL_CASE.replace("plunge_amplitude = 0.03", "plunge_amplitude = 0.115"))
+    plots = tmp_path / "plots"
+    assert main(["check", str(case), "--plots", str(plots), "--json", str(tmp_path / "r.json"), "--no-progress"]) == 1
+    out = capsys.readouterr().out
+    assert (plots / "boxes.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    listed = out[out.index("files written:"):]
+    for f in ("r.json", "motion.png", "boxes.png"):
+        assert f in listed
+    # The verdict comes before the list of files.
+    assert out.index("verdict: FAIL") < out.index("files written:")

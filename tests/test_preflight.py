@@ -82,6 +82,10 @@ def test_domain_the_plunging_body_leaves_fails_domain():
     assert checks["domain.inside"].status == "fail"
     assert "face" in checks["domain.inside"].message
     assert rep.verdict == "fail"
+    # Both y faces are too close, and one run names both (it used to name the nearest only).
+    msg = checks["domain.inside"].message
+    assert "lower y face" in msg and "upper y face" in msg, msg
+    assert "lower y face by at least" in checks["domain.inside"].hint and "upper y face" in checks["domain.inside"].hint
 
 
 def test_two_dimensional_section_case():

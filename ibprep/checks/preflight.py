@@ -278,16 +278,21 @@ def _domain_checks(case: Case, env, figures: dict) -> list[Check]:
     out = []
     worst = float(min(gap_lo.min(), gap_hi.min()))
     if worst < reach:
-        axis = int(np.argmin(np.minimum(gap_lo, gap_hi)))
-        side = "lower" if gap_lo[axis] < gap_hi[axis] else "upper"
-        # when in the cycle the body comes closest to that face
-        per = (env.box_lower[:, axis] - lo[axis]) if side == "lower" else (hi[axis] - env.box_upper[:, axis])
-        k = int(np.argmin(per))
+        # Every face the moving body comes too close to, each with when in the cycle it is closest.
+        found, moves = [], []
+        for axis in range(nd):
+            for side, gap in (("lower", gap_lo[axis]), ("upper", gap_hi[axis])):
+                if gap >= reach:
+                    continue
+                per = (env.box_lower[:, axis] - lo[axis]) if side == "lower" else (hi[axis] - env.box_upper[:, axis])
+                k = int(np.argmin(per))
+                face = f"{side} {'xyz'[axis]}"
+                found.append(f"within {gap:.3g} m of the {face} face (at t = {env.times[k]:.4g} s in the cycle)")
+                moves.append(f"the {face} face by at least {reach - gap:.3g} m")
         out.append(Check(
             "domain.inside", "fail", worst / case.grid.finest_spacing, _STENCIL_REACH_CELLS, "cells",
-            f"the moving body comes within {worst:.3g} m of the {side} {'xyz'[axis]} face "
-            f"(at t = {env.times[k]:.4g} s in the cycle); stencils need {_STENCIL_REACH_CELLS:g} cells of room",
-            f"move the domain's {side} {'xyz'[axis]} face out by at least {reach - worst:.3g} m"))
+            f"the moving body comes {'; '.join(found)}; stencils need {_STENCIL_REACH_CELLS:g} cells of room",
+            f"move out {', '.join(moves)}"))
     else:
         out.append(Check("domain.inside", "pass", worst / case.grid.finest_spacing, _STENCIL_REACH_CELLS, "cells",
                          "the body stays inside the domain over the whole motion"))

@@ -118,63 +118,74 @@ def plot_steps(steps, period: float, path, *, condition_limit: float | None = No
 
 
 def plot_tags_slice(tags, grid, z: float, path, *, nested=None, envelope=None, bad_points=(), title: str = "",
-                    zoom=None) -> Path:
-    """PNG of a z-slice of the tags, failed-stencil cells marked, refinement boxes and swept envelope drawn.
+                    zoom=None, slice_note: str = "") -> Path:
+    """PNG of the domain and its boxes (x–y, and x–z for 3-D) and a z-slice of the tags near the body.
 
     Parameters
     ----------
-    tags : grid.shape uint8 — CellTag codes of ``grid``.
+    tags : grid.shape uint8 — CellTag codes of ``grid``; None draws the boxes only.
     grid : Grid — the level the tags belong to (3-D or 2-D).
     z : float — metres; the slice plane (ignored for 2-D).
-    nested : NestedGrid, optional — its boxes are drawn in the left panel.
+    nested : NestedGrid, optional — its levels are drawn, the domain (level 0) included.
     envelope : (lower, upper) pair, optional — swept envelope, drawn dashed.
     bad_points : (k, 3) float — metres; cells whose stencil failed (marked ×).
-    zoom : (lower, upper) of (2,) float, optional — the x–y window of the right panel.
+    zoom : (lower, upper) of (2,) float, optional — the x–y window of the tags panel.
+    slice_note : str — why the slice is where it is (e.g. "through the worst stencil").
     """
     plt = _pyplot()
     from matplotlib.colors import ListedColormap
     from matplotlib.patches import Rectangle
 
-    tags = np.asarray(tags)
-    if grid.ndim == 3:
-        k = int(np.clip(np.floor((z - grid.lower[2]) / grid.spacing), 0, grid.shape[2] - 1))
-        sl = tags[:, :, k]
-    else:
-        sl = tags
-    fig, axes = plt.subplots(1, 2, figsize=(11, 4.8), gridspec_kw={"width_ratios": [1.2, 1]})
-    ax = axes[0]
-    if nested is not None:
-        b = nested.base
-        ax.add_patch(Rectangle(b.lower[:2], b.extent[0], b.extent[1], fill=False, lw=1.2, color="k"))
-        for lvl, g in enumerate(nested.levels[1:], start=1):
-            ax.add_patch(Rectangle(g.lower[:2], g.extent[0], g.extent[1], fill=False, lw=1.0,
-                                   color=plt.cm.viridis(lvl / max(1, len(nested.levels))), label=f"level {lvl}, h = {g.spacing:.3g} m"))
-        ax.set_xlim(b.lower[0], b.upper[0])
-        ax.set_ylim(b.lower[1], b.upper[1])
-    if envelope is not None:
-        lo, hi = envelope
-        ax.add_patch(Rectangle(lo[:2], hi[0] - lo[0], hi[1] - lo[1], fill=False, ls="--", color="tab:red",
-                               label="swept envelope"))
-    ax.set_aspect("equal")
-    ax.set_xlabel("x (m)")
-    ax.set_ylabel("y (m)")
-    ax.set_title("domain, refinement boxes", fontsize=9)
-    ax.legend(fontsize=7, loc="upper right")
-    ax = axes[1]
-    cmap = ListedColormap(["#dbe9f6", "#555555", "#f0a030"])
-    extent = (grid.lower[0], grid.upper[0], grid.lower[1], grid.upper[1])
-    ax.imshow(sl.T, origin="lower", extent=extent, cmap=cmap, vmin=0, vmax=2, interpolation="nearest")
-    bp = np.asarray(bad_points, dtype=float).reshape(-1, grid.ndim if grid.ndim == 2 else 3)
-    if bp.size:
-        near = np.abs(bp[:, 2] - z) <= grid.spacing if bp.shape[1] == 3 else np.ones(len(bp), bool)
-        ax.plot(bp[near, 0], bp[near, 1], "x", color="red", ms=6, label="failed stencil")
+    three_d = grid.ndim == 3
+    views = [(0, 1)] + ([(0, 2)] if three_d and nested is not None else [])
+    ncols = len(views) + (tags is not None)
+    fig, axes = plt.subplots(1, ncols, figsize=(5.5 * ncols, 4.8), squeeze=False)
+    axes = list(axes[0])
+    for ax, (a, b_) in zip(axes, views):
+        if nested is not None:
+            for lvl, g in enumerate(nested.levels):
+                what = "domain" if lvl == 0 else "box"
+                ax.add_patch(Rectangle((g.lower[a], g.lower[b_]), g.extent[a], g.extent[b_], fill=False,
+                                       lw=1.2 if lvl == 0 else 1.0,
+                                       color="k" if lvl == 0 else plt.cm.viridis(lvl / max(1, len(nested.levels))),
+                                       label=f"level {lvl} ({what}), h = {g.spacing:.3g} m"))
+            base = nested.base
+            ax.set_xlim(base.lower[a], base.upper[a])
+            ax.set_ylim(base.lower[b_], base.upper[b_])
+        if envelope is not None:
+            lo, hi = envelope
+            ax.add_patch(Rectangle((lo[a], lo[b_]), hi[a] - lo[a], hi[b_] - lo[b_], fill=False, ls="--",
+                                   color="tab:red", label="swept envelope"))
+        ax.set_aspect("equal")
+        ax.set_xlabel(f"{'xyz'[a]} (m)")
+        ax.set_ylabel(f"{'xyz'[b_]} (m)")
+        ax.set_title(f"domain and refinement boxes, {'xyz'[a]}–{'xyz'[b_]} view", fontsize=9)
         ax.legend(fontsize=7, loc="upper right")
-    if zoom is not None:
-        ax.set_xlim(zoom[0][0], zoom[1][0])
-        ax.set_ylim(zoom[0][1], zoom[1][1])
-    ax.set_aspect("equal")
-    ax.set_xlabel("x (m)")
-    ax.set_title(f"tags at z = {z:.4g} m: fluid (light), solid (grey), interface (orange)", fontsize=9)
+    if tags is not None:
+        tags = np.asarray(tags)
+        if three_d:
+            k = int(np.clip(np.floor((z - grid.lower[2]) / grid.spacing), 0, grid.shape[2] - 1))
+            sl = tags[:, :, k]
+        else:
+            sl = tags
+        ax = axes[-1]
+        cmap = ListedColormap(["#dbe9f6", "#555555", "#f0a030"])
+        extent = (grid.lower[0], grid.upper[0], grid.lower[1], grid.upper[1])
+        ax.imshow(sl.T, origin="lower", extent=extent, cmap=cmap, vmin=0, vmax=2, interpolation="nearest")
+        bp = np.asarray(bad_points, dtype=float).reshape(-1, grid.ndim if grid.ndim == 2 else 3)
+        if bp.size:
+            near = np.abs(bp[:, 2] - z) <= grid.spacing if bp.shape[1] == 3 else np.ones(len(bp), bool)
+            ax.plot(bp[near, 0], bp[near, 1], "x", color="red", ms=6, label="failed stencil")
+            ax.legend(fontsize=7, loc="upper right")
+        if zoom is not None:
+            ax.set_xlim(zoom[0][0], zoom[1][0])
+            ax.set_ylim(zoom[0][1], zoom[1][1])
+        ax.set_aspect("equal")
+        ax.set_xlabel("x (m)")
+        ax.set_ylabel("y (m)")
+        where = f"slice z = {z:.4g} m" if three_d else "the x–y plane"
+        note = f" ({slice_note})" if slice_note else ""
+        ax.set_title(f"tags, {where}{note}:\nfluid (light), solid (grey), interface (orange)", fontsize=9)
     fig.suptitle(title, fontsize=10)
     fig.tight_layout()
     return _save_figure(fig, path)
