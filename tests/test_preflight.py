@@ -158,3 +158,22 @@ def test_one_chord_or_cell_is_singular():
     assert _counted("1", "cells") == "1 cell"
     assert _counted("1", "s") == "1 s"
     assert "gap: 1 cell, below the advised 4" in _below("g", 1.0, 4.0, 0.5, "cells", "gap", "").message
+
+
+def test_a_plain_naca_0012_wing_at_64_cells_per_chord_passes_the_thin_check_with_default_limits():
+    # Its only thin part is the taper of its sharp trailing edge (about 11 % of the area at 64 cells per
+    # chord [computed]); with the default thin_fraction_max (10 %) it used to fail. Now it warns, naming
+    # the taper, and a plate the same grid cannot hold still fails.
+    from ibprep.checks.preflight import _surface_checks
+
+    text = SMALL_CASE.replace("thin_fraction_max = 0.95\n", "")
+    case = parse_case(text)
+    assert case.checks.thin_fraction_max == 0.10
+    h = case.chord / 64
+    thin = {c.id: c for c in _surface_checks(case, h, {})}["surface.thin"]
+    assert thin.status == "warn", thin.message
+    assert "taper of a sharp edge" in thin.message and thin.value == 0.0
+    # The same wing at 16 cells per chord: its whole section is thinner than two cells (0.12 c < 2 c/16)
+    # away from the edge too, and it fails.
+    thin16 = {c.id: c for c in _surface_checks(case, case.chord / 16, {})}["surface.thin"]
+    assert thin16.status == "fail", thin16.message

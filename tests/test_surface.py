@@ -312,6 +312,40 @@ def test_thickness_of_a_slab_and_its_thin_regions():
     assert thin_regions(slab, 0.5 * d, spacing=0.05).count == 0
 
 
+@pytest.mark.parametrize("code", ["0012", "4412"])
+def test_a_sharp_trailing_edge_is_thin_only_as_its_taper(code):
+    # A closed-TE NACA 4-digit wing at 64 cells per chord: the strip thinner than two cells along the
+    # trailing edge is about 11 % of the area, and all of it is the wedge's taper, so none counts as a thin
+    # part the grid may lose. The taper length follows the thickness equation of Jacobs, Ward & Pinkerton
+    # (1933, NACA Report 460; Abbott & von Doenhoff 1959, Ch. 6) [memory: high]: full TE slope 0.28 for
+    # 12 % thickness, so 2 h / 0.28 = 7 cells of chord, 0.11 c [computed].
+    import ibprep
+
+    h = 1.0 / 64
+    wing = ibprep.make_wing(ibprep.naca4(code), 1.0, 2.0, tips="flat")
+    thin = thin_regions(wing, 2 * h, spacing=h)
+    assert 0.08 < thin.area / thin.examined_area < 0.14
+    assert thin.edge_taper.all() and thin.other_area == 0.0
+
+
+def test_a_thin_plate_is_thin_away_from_its_edges():
+    # A plate 1.5 cells thick with a knife (wedge) edge along one side: the wedge's taper is expected,
+    # the rest of the plate is not (elementary geometry; common practice, no single source).
+    from ibprep.geometry.triangles import extrude_loops
+
+    h = 1.0 / 64
+    d = 1.5 * h
+    loop = np.array([[0.0, 0.0], [0.05, -d / 2], [1.0, -d / 2], [1.0, d / 2], [0.05, d / 2]])
+    plate = extrude_loops([loop], half_depth=1.0)
+    thin = thin_regions(plate, 2 * h, spacing=h)
+    assert thin.area / thin.examined_area > 0.9
+    assert thin.other_area / thin.examined_area > 0.8
+    assert thin.edge_taper.any()  # the wedge itself
+    # No sharp edge at all (a square-edged plate): nothing is a taper.
+    box = _box(extents=(1.0, d, 2.0))
+    assert not thin_regions(box, 2 * h, spacing=h).edge_taper.any()
+
+
 def test_thin_band_of_a_2d_prism_measures_the_section_perimeter():
     # A 2-D strip section L x t extruded deep along z: its long sides are t thick, its ends L
     # (elementary geometry; common practice, no single source). Examining a band of the walls

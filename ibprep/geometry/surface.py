@@ -784,11 +784,18 @@ class ThinRegions:
     min_thickness: float
     limit: float
     examined_area: float
+    edge_taper: np.ndarray = None
+    taper_area: float = 0.0
 
     @property
     def count(self) -> int:
         """Number of markers below the limit."""
         return int(len(self.thickness))
+
+    @property
+    def other_area(self) -> float:
+        """m^2; thin area not explained by the taper of a sharp edge (see :func:`thin_regions`)."""
+        return self.area - self.taper_area
 
 
 def thin_regions(mesh, min_thickness: float, *, spacing: float | None = None,
@@ -823,6 +830,7 @@ def thin_regions(mesh, min_thickness: float, *, spacing: float | None = None,
         pts, nrm, area = pts[side], nrm[side], area[side]
     thick = local_thickness(mesh, pts, nrm, max_distance=limit)
     thin = thick < limit
+    taper = _sharp_edge_taper(mesh, pts[thin], thick[thin], limit)
     return ThinRegions(
         points=pts[thin],
         thickness=thick[thin],
@@ -830,7 +838,58 @@ def thin_regions(mesh, min_thickness: float, *, spacing: float | None = None,
         min_thickness=float(thick.min()) if len(thick) else float("inf"),
         limit=limit,
         examined_area=float(area.sum()),
+        edge_taper=taper,
+        taper_area=float(area[thin][taper].sum()),
     )
+
+
+# A mesh edge is a sharp (wedge) edge when its two faces fold back on each other: the angle between their
+# outward normals is above this, i.e. the wedge angle there is below 60 degrees.
+_FOLD_MIN_DEG = 120.0
+# A thin marker is the taper of a sharp edge when it lies no further from the edge than a wedge of the
+# edge's own angle would be that thin, with this much slack for a curved (cambered, rounded) taper.
+_TAPER_SLACK = 1.5
+
+
+def _sharp_edge_taper(mesh, points: np.ndarray, thickness: np.ndarray, limit: float) -> np.ndarray:
+    """(k,) bool: which thin markers are explained by the taper of a sharp edge (a trailing edge).
+
+    A wedge of full angle phi is thinner than ``t`` within ``t / (2 tan(phi / 2))`` of its edge, whatever
+    the grid: the thin strip along a sharp trailing edge is as wide, in cells, at every resolution. Such a
+    marker is expected. A marker that is thin further from any sharp edge than that (a thin plate or fin, a
+    flap, a thin wall) is not: it is the part of the body the grid may lose. Sharp edges are the mesh edges
+    whose faces fold back on each other (normals more than 120 degrees apart).
+    """
+    k = len(points)
+    if k == 0:
+        return np.zeros(0, dtype=bool)
+    v, f = _arrays(mesh)
+    fn = np.cross(v[f[:, 1]] - v[f[:, 0]], v[f[:, 2]] - v[f[:, 0]])
+    fn /= np.maximum(np.linalg.norm(fn, axis=1, keepdims=True), 1e-300)
+    edges = np.sort(np.concatenate([f[:, [0, 1]], f[:, [1, 2]], f[:, [2, 0]]]), axis=1)
+    owner = np.tile(np.arange(len(f)), 3)
+    order = np.lexsort((edges[:, 1], edges[:, 0]))
+    e, o = edges[order], owner[order]
+    pair = np.flatnonzero((e[1:] == e[:-1]).all(axis=1))  # consecutive equal edges: the two faces
+    cos = np.einsum("ij,ij->i", fn[o[pair]], fn[o[pair + 1]])
+    fold = cos < math.cos(math.radians(_FOLD_MIN_DEG))
+    if not fold.any():
+        return np.zeros(k, dtype=bool)
+    ends = e[pair[fold]]
+    # Full wedge angle phi = pi - (angle between the normals); slope of the wedge's thickness 2 tan(phi / 2).
+    phi = math.pi - np.arccos(np.clip(cos[fold], -1.0, 1.0))
+    slope = 2.0 * np.tan(0.5 * phi)
+    a, b = v[ends[:, 0]], v[ends[:, 1]]
+    # Sample each sharp edge finely (a quarter of the limit) and take the nearest sample.
+    from scipy.spatial import cKDTree
+
+    n_s = np.maximum(1, np.ceil(np.linalg.norm(b - a, axis=1) / (0.25 * limit)).astype(np.int64))
+    idx = np.repeat(np.arange(len(a)), n_s + 1)
+    frac = np.concatenate([np.linspace(0.0, 1.0, n + 1) for n in n_s])
+    samples = a[idx] + frac[:, None] * (b - a)[idx]
+    dist, near = cKDTree(samples).query(points)
+    reach = _TAPER_SLACK * thickness / np.maximum(slope[idx[near]], 1e-12) + 0.25 * limit
+    return dist <= reach
 
 
 def _side_band(mesh, half: float):
