@@ -93,6 +93,18 @@ def _reconstruction_error(st, grid, field):
     return st.reconstruct(phi, g) - phi[st.cells]
 
 
+def test_padded_entries_never_read_a_nan():
+    # One NaN in the last (and first) cell of the field must not reach rows whose padding points at -1.
+    grid, surf, tags = _sphere_case(5, "fluid-side")
+    st = build_stencils(tags, grid, surf)
+    assert (st.neighbours == -1).any()
+    phi = np.ones(grid.shape)
+    phi.reshape(-1)[[0, -1]] = np.nan
+    assert 0 not in st.neighbours and grid.size - 1 not in st.neighbours  # far from the sphere
+    got = st.reconstruct(phi, np.ones(len(st)))
+    assert np.isfinite(got).all()
+
+
 # ------------------------------------------------------- reproduction, 3-D
 @pytest.mark.parametrize("bc", ["dirichlet", "neumann"])
 @pytest.mark.parametrize("interface", ["fluid-side", "solid-side"])

@@ -307,7 +307,13 @@ class Section:
 
     @property
     def te_thickness(self) -> float:
-        """Distance between the upper and lower trailing-edge points, fraction of chord (0 if closed)."""
+        """Distance between the upper and lower trailing-edge points, fraction of chord (0 if closed).
+
+        The closed variant's coefficients sum to zero exactly (REFERENCES: -0.1036), so its trailing
+        edge thickness is 0 by construction, not the -7e-17 its evaluation in floating point gives.
+        """
+        if self.closed_te:
+            return 0.0
         return float(2.0 * self.thickness(np.array([1.0]))[0])
 
     @property

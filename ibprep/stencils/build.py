@@ -14,7 +14,9 @@ Reconstruction (the contract a solver reads)::
 
 with ``g = phi(boundary_point)`` for ``bc="dirichlet"`` and
 ``g = grad(phi)(boundary_point) · boundary_normal`` for ``bc="neumann"``.
-Padded entries have ``neighbours == -1`` and ``weights == 0``.
+Padded entries have ``neighbours == -1`` and ``weights == 0``. Read literally the formula indexes
+``phi_flat[-1]`` for them, and ``0 * nan`` is NaN: mask them out (as :meth:`Stencils.reconstruct`
+does), ``np.where(neighbours >= 0, phi_flat[np.maximum(neighbours, 0)], 0.0)``.
 
 Choices (documented defaults)
 -----------------------------
@@ -393,7 +395,9 @@ class Stencils:
         (n,) float.
         """
         flat = np.asarray(phi, dtype=float).ravel()
-        vals = flat[np.where(self.neighbours >= 0, self.neighbours, 0)]
+        used = self.neighbours >= 0
+        # Padded entries contribute exactly nothing: never 0 * phi[-1] (or phi[0]), which a NaN there poisons.
+        vals = np.where(used, flat[np.where(used, self.neighbours, 0)], 0.0)
         return (self.weights * vals).sum(axis=1) + self.boundary_weight * np.asarray(g, dtype=float)
 
     # ------------------------------------------------------------- save/load
