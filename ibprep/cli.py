@@ -170,12 +170,22 @@ def _duration(seconds: float) -> str:
 _MARK = {"pass": "ok  ", "warn": "WARN", "fail": "FAIL"}
 
 
+def _limit_note(check) -> str:
+    """' [limit 0.5]' on a passing row whose message does not already say its limit: the margin shows."""
+    if check.status != "pass" or check.limit is None or not isinstance(check.limit, (int, float)):
+        return ""
+    if not math.isfinite(check.limit) or "limit" in check.message:
+        return ""
+    unit = f" {check.unit}" if check.unit and check.unit not in ("-", "area fraction") else ""
+    return f"  [limit {check.limit:.4g}{unit}]"
+
+
 def format_report(report) -> str:
     """The report as an aligned plain-text table plus the key figures (no colour needed)."""
     rows = []
     w_id = max(len(c.id) for c in report.checks)
     for c in report.checks:
-        rows.append(f"  {_MARK[c.status]}  {c.id:<{w_id}}  {c.message}")
+        rows.append(f"  {_MARK[c.status]}  {c.id:<{w_id}}  {c.message}{_limit_note(c)}")
         if c.status != "pass" and c.hint:
             rows.append(f"        {'':<{w_id}}  -> {c.hint}")
     f = report.figures

@@ -281,7 +281,9 @@ def test_figures_say_when_a_number_does_not_apply():
 
     from ibprep.cli import format_report
 
-    check = SimpleNamespace(id="time.cfl", status="pass", message="fine", hint="")
+    from ibprep import Check
+
+    check = Check("time.cfl", "pass", 0.3, 0.5, "-", "fine")
     numbers = {"alpha_eff_max_deg": 20.0, "feathering_chi": math.inf, "roll_amplitude_deg": 30.0,
                "te_point_m": [0.032, 0.0, 0.05]}
     report = SimpleNamespace(title="fin", checks=[check], figures={"numbers": numbers}, verdict="pass", caution="c")
@@ -289,6 +291,7 @@ def test_figures_say_when_a_number_does_not_apply():
     assert "feathering chi                     n/a (no plunge)" in text
     assert "max |alpha_eff| (deg, no roll)     20.00" in text
     assert "TE point used (m, body frame)      (0.032, 0, 0.05)" in text  # where the TE figures come from
+    assert "time.cfl  fine  [limit 0.5]" in text  # a passing row shows its limit, so its margin shows
     numbers.update(feathering_chi=1.5, roll_amplitude_deg=0.0)
     text = format_report(report)
     assert "feathering chi                     1.5" in text
