@@ -33,10 +33,13 @@ centre only if it lies strictly before it.
 
 The rule, in one line: a cell centre ``c`` lying exactly on the surface is
 classified as the point ``c + (-d, +e, +e**2)`` with ``d``, ``e`` infinitesimal.
-For a box whose faces lie on planes of centres, the solid centres are those in
+(``d`` much larger than ``e``: along x a crossing at the centre itself never
+counts). For a box whose faces lie on planes of centres, the solid centres are those in
 ``(x0, x1] x [y0, y1) x [z0, z1)``; two face-adjacent boxes give the same tags as
-the merged box. Centres off the surface are tagged exactly as they lie, up to
-the rounding of the crossing abscissa along x (about 1e-16 of the coordinates).
+the merged box. The crossing abscissa is compared with the centres exactly as
+well: it is computed in floating point with a proven error bound, and the few
+crossings within that bound of a centre are recomputed in exact rational
+arithmetic, so every centre, on the surface or off it, is tagged as the rule says.
 
 Cost
 ----
@@ -97,6 +100,10 @@ INTERFACE_MODES = ("fluid-side", "solid-side")
 # of det = l - r computed in double precision, eps = 2**-53.
 _EPS = 2.0**-53
 _CCW_ERRBOUND = (3.0 + 16.0 * _EPS) * _EPS
+
+# Safety factor on the first-order error bound of the crossing abscissa (second-order terms, and the
+# rounding of the bound itself, are far below it).
+_ABSCISSA_SAFETY = 2.0
 
 # Lattice candidates handled per chunk: the enumeration holds about 200 bytes per
 # candidate, so a chunk needs about 80 MB (a single triangle covering more lattice
@@ -173,6 +180,61 @@ def _orient_sign(ay, az, by, bz, py, pz) -> np.ndarray:
     return sign
 
 
+def _abscissa_error_coefficients(e1x, e2x, dyab, dzab, e2y, e2z, n_x, ky, kz, bad):
+    """(cy, cz): the crossing abscissa ``ax - (qy ky + qz kz)`` is within
+    ``2 (|qy| cy + |qz| cz + eps (|qy ky + qz kz| + |x|))`` of the exact one; inf where no bound holds.
+
+    First-order bound of the rounding of the edge differences (eps each), the normal's
+    components (4 eps of the sum of their products' magnitudes), the slopes ky = n_y / n_x,
+    kz = n_z / n_x, and the products with qy, qz. A triangle whose normal's x component is not
+    well above its own error (nearly edge-on in projection) gets no bound: its crossings are all
+    computed exactly. Works on arrays and, through the compiled twin, on scalars.
+    """
+    a = np.abs(dyab * e2z) + np.abs(dzab * e2y)
+    b_y = np.abs(dzab * e2x) + np.abs(e1x * e2z)
+    b_z = np.abs(e1x * e2y) + np.abs(dyab * e2x)
+    dnx = 4.0 * _EPS * a
+    denom = np.abs(n_x) - dnx
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        dky = (4.0 * _EPS * b_y + np.abs(ky) * dnx) / denom + 3.0 * _EPS * np.abs(ky)
+        dkz = (4.0 * _EPS * b_z + np.abs(kz) * dnx) / denom + 3.0 * _EPS * np.abs(kz)
+    none = bad | ~(denom > dnx) | ~np.isfinite(dky) | ~np.isfinite(dkz)
+    return np.where(none, np.inf, dky), np.where(none, np.inf, dkz)
+
+
+def _abscissa_sure(xs, i, x, qy, qz, s, cy, cz) -> np.ndarray:
+    """Whether ``i = searchsorted(xs, x, 'right')`` is proven right for the exact abscissa (see above)."""
+    err = _ABSCISSA_SAFETY * (np.abs(qy) * cy + np.abs(qz) * cz + _EPS * (np.abs(s) + np.abs(x)))
+    n = xs.size
+    with np.errstate(invalid="ignore"):
+        above = np.where(i < n, xs[np.minimum(i, n - 1)] - x, np.inf) > err
+        below = np.where(i > 0, x - xs[np.maximum(i - 1, 0)], np.inf) > err
+    return above & below
+
+
+def _exact_first_beyond(tri, py, pz, xs, guess) -> np.ndarray:
+    """searchsorted(xs, x*, 'right') for the exact crossing abscissae x* (fractions.Fraction; few calls).
+
+    tri : (n, 3, 3) float — the triangles' vertices; py, pz : (n,) float — the rows; guess : (n,) int.
+    """
+    F = Fraction
+    out = np.empty(len(py), np.int64)
+    n = xs.size
+    for q, ((x0, y0, z0), (x1, y1, z1), (x2, y2, z2)) in enumerate(tri.tolist()):
+        x0, y0, z0, x1, y1, z1, x2, y2, z2 = (F(c) for c in (x0, y0, z0, x1, y1, z1, x2, y2, z2))
+        nx = (y1 - y0) * (z2 - z0) - (z1 - z0) * (y2 - y0)
+        ny = (z1 - z0) * (x2 - x0) - (x1 - x0) * (z2 - z0)
+        nz = (x1 - x0) * (y2 - y0) - (y1 - y0) * (x2 - x0)
+        xc = x0 - (ny * (F(py[q]) - y0) + nz * (F(pz[q]) - z0)) / nx  # nx != 0: zero areas are never crossed
+        i = int(guess[q])
+        while i < n and F(float(xs[i])) <= xc:
+            i += 1
+        while i > 0 and F(float(xs[i - 1])) > xc:
+            i -= 1
+        out[q] = i
+    return out
+
+
 def _edge_side(ay, az, by, bz, py, pz) -> np.ndarray:
     """Side (+1 left, -1 right) of the lattice point moved by (+e, +e**2) against edge a→b.
 
@@ -219,6 +281,8 @@ def _axes3(grid: Grid) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 
 # Rows of the per-triangle table used by the enumeration (one gather per candidate).
 _AY, _AZ, _BY, _BZ, _CY, _CZ, _DYAB, _DZAB, _DYBC, _DZBC, _DYCA, _DZCA, _AX, _KY, _KZ, _XLO, _XHI = range(17)
+# Further rows: the vertices' x (for the exact fallback) and the abscissa's error coefficients.
+_X0, _X1, _X2, _ECY, _ECZ = range(17, 22)
 
 
 def _lattice_range(axis: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -268,7 +332,7 @@ def _crossings_numpy(vertices: np.ndarray, faces: np.ndarray, xs, ys, zs) -> _Cr
     hit = hit[nonzero]
     y0, y1, y2, z0, z1, z2 = y0[nonzero], y1[nonzero], y2[nonzero], z0[nonzero], z1[nonzero], z2[nonzero]
     x0, x1, x2 = vt[0][ft[0][hit]], vt[0][ft[1][hit]], vt[0][ft[2][hit]]
-    table = np.empty((17, hit.size))
+    table = np.empty((22, hit.size))
     table[_AY], table[_AZ] = y0, z0
     table[_BY], table[_BZ] = y1, z1
     table[_CY], table[_CZ] = y2, z2
@@ -294,6 +358,8 @@ def _crossings_numpy(vertices: np.ndarray, faces: np.ndarray, xs, ys, zs) -> _Cr
     table[_KY], table[_KZ] = ky, kz
     table[_XLO] = xlo
     table[_XHI] = xhi
+    table[_X0], table[_X1], table[_X2] = x0, x1, x2
+    table[_ECY], table[_ECZ] = _abscissa_error_coefficients(e1x, e2x, e1y, e1z, e2y, e2z, n_x, ky, kz, bad)
     counts = (nj[hit] * nk[hit]).astype(np.int64)
     ends = np.cumsum(counts)
     starts = ends - counts
@@ -360,14 +426,24 @@ def _crossings_chunk(T, j0, k0, nk, counts, xs, ys, zs):
     keep = np.flatnonzero(inside)
     g = np.take(T[_AX:], owner[keep], axis=1)  # plane rows only
     py, pz = py[keep], pz[keep]
+    row_y, row_z = py.copy(), pz.copy()
     py -= G[_AY][keep]
     pz -= G[_AZ][keep]
+    qy, qz = py.copy(), pz.copy()
     py *= g[_KY - _AX]
     pz *= g[_KZ - _AX]
     py += pz
     x = g[0] - py
     np.clip(x, g[_XLO - _AX], g[_XHI - _AX], out=x)  # guards nearly edge-on triangles against rounding
     i = np.searchsorted(xs, x, side="right").astype(np.int64)
+    # Crossings within rounding of a centre: the exact abscissa decides (the rule along x is exact too).
+    unsure = np.flatnonzero(~_abscissa_sure(xs, i, x, qy, qz, py, g[_ECY - _AX], g[_ECZ - _AX]))
+    if unsure.size:
+        gu = g[:, unsure]
+        tri = np.stack([np.stack([gu[_X0 - _AX], G[_AY][keep][unsure], G[_AZ][keep][unsure]], -1),
+                        np.stack([gu[_X1 - _AX], G[_BY][keep][unsure], G[_BZ][keep][unsure]], -1),
+                        np.stack([gu[_X2 - _AX], G[_CY][keep][unsure], G[_CZ][keep][unsure]], -1)], axis=1)
+        i[unsure] = _exact_first_beyond(tri, row_y[unsure], row_z[unsure], xs, i[unsure])
     # All edges see the row on their left: counter-clockwise in (y, z), outward
     # normal towards +x, the row leaves the body (-1); else it enters (+1).
     w = np.where(l_ab[keep], -1, 1).astype(np.int8)
@@ -439,8 +515,9 @@ def _first_beyond_nb(xs, inv_h, x):
 
 @numba.njit(inline="always", **_JIT)
 def _plane_abscissa_nb(x0, x1, x2, dyab, dzab, e2y, e2z):
-    """(ax, ky, kz, xlo, xhi): the crossing of row (py, pz) is ax - ((py - y0) ky + (pz - z0) kz),
-    clipped to [xlo, xhi]; the mid abscissa if the normal's x component underflowed."""
+    """(ax, ky, kz, xlo, xhi, cy, cz): the crossing of row (py, pz) is ax - ((py - y0) ky + (pz - z0) kz),
+    clipped to [xlo, xhi]; the mid abscissa if the normal's x component underflowed. cy, cz: the
+    error coefficients of :func:`_abscissa_error_coefficients` (inf: compute every crossing exactly)."""
     e1x = x1 - x0
     e2x = x2 - x0
     n_x = dyab * e2z - dzab * e2y
@@ -451,11 +528,37 @@ def _plane_abscissa_nb(x0, x1, x2, dyab, dzab, e2y, e2z):
     xlo = min(min(x0, x1), x2)
     xhi = max(max(x0, x1), x2)
     ax = x0
-    if not (np.isfinite(ky) and np.isfinite(kz)):  # n_x underflowed: the mid abscissa
+    bad = not (np.isfinite(ky) and np.isfinite(kz))
+    if bad:  # n_x underflowed: the mid abscissa
         ky = 0.0
         kz = 0.0
         ax = 0.5 * (xlo + xhi)
-    return ax, ky, kz, xlo, xhi
+    a = abs(dyab * e2z) + abs(dzab * e2y)
+    b_y = abs(dzab * e2x) + abs(e1x * e2z)
+    b_z = abs(e1x * e2y) + abs(dyab * e2x)
+    dnx = 4.0 * _EPS * a
+    denom = abs(n_x) - dnx
+    cy = np.inf
+    cz = np.inf
+    if not bad and denom > dnx:
+        cy = (4.0 * _EPS * b_y + abs(ky) * dnx) / denom + 3.0 * _EPS * abs(ky)
+        cz = (4.0 * _EPS * b_z + abs(kz) * dnx) / denom + 3.0 * _EPS * abs(kz)
+        if not (np.isfinite(cy) and np.isfinite(cz)):
+            cy = np.inf
+            cz = np.inf
+    return ax, ky, kz, xlo, xhi, cy, cz
+
+
+@numba.njit(inline="always", **_JIT)
+def _abscissa_sure_nb(xs, i, x, qy, qz, s, cy, cz):
+    """Scalar twin of :func:`_abscissa_sure`: is centre index i proven right for the exact abscissa?"""
+    err = _ABSCISSA_SAFETY * (abs(qy) * cy + abs(qz) * cz + _EPS * (abs(s) + abs(x)))
+    n = xs.size
+    if i < n and not (xs[i] - x > err):
+        return False
+    if i > 0 and not (x - xs[i - 1] > err):
+        return False
+    return True
 
 
 @numba.njit(inline="always", **_JIT)
@@ -539,7 +642,7 @@ def _crossings_nb(vx, vy, vz, f0, f1, f2, xs, ys, zs):
         dyab, dzab = y1 - y0, z1 - z0
         dybc, dzbc = y2 - y1, z2 - z1
         dyca, dzca = y0 - y2, z0 - z2
-        ax, ky, kz, xlo, xhi = _plane_abscissa_nb(x0, x1, x2, dyab, dzab, y2 - y0, z2 - z0)
+        ax, ky, kz, xlo, xhi, cy, cz = _plane_abscissa_nb(x0, x1, x2, dyab, dzab, y2 - y0, z2 - z0)
         start = n
         for j in range(j0s[t], j1s[t]):
             py = ys[j]
@@ -552,9 +655,16 @@ def _crossings_nb(vx, vy, vz, f0, f1, f2, xs, ys, zs):
                     break
                 if l_ab != l_bc or l_bc != l_ca:
                     continue
-                x = ax - ((py - y0) * ky + (pz - z0) * kz)
+                qy = py - y0
+                qz = pz - z0
+                s = qy * ky + qz * kz
+                x = ax - s
                 x = min(max(x, xlo), xhi)
-                out_i[n] = _first_beyond_nb(xs, inv_hx, x)
+                i = _first_beyond_nb(xs, inv_hx, x)
+                if not _abscissa_sure_nb(xs, i, x, qy, qz, s, cy, cz):
+                    status[t] = 2  # within rounding of a centre: the numpy path decides exactly
+                    break
+                out_i[n] = i
                 out_j[n] = j
                 out_k[n] = k
                 out_w[n] = -1 if l_ab else 1
@@ -709,6 +819,7 @@ def _crossing_rows_nb(v, f, xs, ys, zs, cap, i_proto):
     out_i = np.empty(cap, i_proto.dtype)
     out_w = np.empty(cap, np.int8)
     out_x = np.empty(cap, np.float64)  # crossing abscissae, until their centre index is found
+    out_e = np.empty(cap, np.float64)  # and their error bounds
     exact = np.empty(m, np.int64)
     ne = 0
     n = 0
@@ -754,10 +865,11 @@ def _crossing_rows_nb(v, f, xs, ys, zs, cap, i_proto):
             w2[:n] = out_w[:n]
             out_r, out_i, out_w = r2, i2, w2
             out_x = np.empty(grown, np.float64)  # holds only the current triangle's
+            out_e = np.empty(grown, np.float64)
         x0, x1, x2 = v[a, 0], v[b, 0], v[c, 0]
         dybc, dzbc = y2 - y1, z2 - z1
         dyca, dzca = y0 - y2, z0 - z2
-        ax, ky, kz, xlo, xhi = _plane_abscissa_nb(x0, x1, x2, dyab, dzab, e2y, e2z)
+        ax, ky, kz, xlo, xhi, cy, cz = _plane_abscissa_nb(x0, x1, x2, dyab, dzab, e2y, e2z)
         first = n
         # Rows of at most 3 candidates (small triangles): the in/out branch would
         # mispredict often, so every candidate is written and kept by n += inside.
@@ -776,8 +888,12 @@ def _crossing_rows_nb(v, f, xs, ys, zs, cap, i_proto):
                     break
                 inside = (l_ab == l_bc) & (l_bc == l_ca)
                 if inside | short:
-                    x = ax - ((py - y0) * ky + (pz - z0) * kz)
-                    out_x[n] = min(max(x, xlo), xhi)
+                    qy = py - y0
+                    qz = pz - z0
+                    s = qy * ky + qz * kz
+                    x = min(max(ax - s, xlo), xhi)
+                    out_x[n] = x
+                    out_e[n] = _ABSCISSA_SAFETY * (abs(qy) * cy + abs(qz) * cz + _EPS * (abs(s) + abs(x)))
                     out_r[n] = rj + k
                     out_w[n] = -1 if l_ab else 1
                     n += inside
@@ -789,7 +905,17 @@ def _crossing_rows_nb(v, f, xs, ys, zs, cap, i_proto):
             ne += 1
             continue
         for q in range(first, n):
-            out_i[q] = _first_beyond_nb(xs, inv_hx, out_x[q])
+            iq = _first_beyond_nb(xs, inv_hx, out_x[q])
+            if (iq < xs.size and not (xs[iq] - out_x[q] > out_e[q])) or (iq > 0 and not (out_x[q] - xs[iq - 1] > out_e[q])):
+                unsure = True  # within rounding of a centre: the numpy path decides exactly
+                break
+            out_i[q] = iq
+        if unsure:
+            n = first
+            exact[ne] = t
+            ne += 1
+            continue
+        for q in range(first, n):
             count[out_r[q] + 1] += 1
     # Counting sort by row; each crossing is inserted in order into its row's bucket.
     for q in range(nj * nk):
